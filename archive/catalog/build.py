@@ -1,0 +1,209 @@
+"""Write (or bring up to date) the whole STAC catalog of a shelf.
+
+Order matters for readers that may look at any moment: Item files first, then the
+Collections, then the index, and the root ``catalog.json`` last, each file replaced whole.
+An update writes only new or changed Items; extents, summaries, the index and the root are
+recomputed from the Items held in the index, so no Item JSON has to be re-read.
+"""
+
+from __future__ import annotations
+
+import logging
+import sqlite3
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field, replace
+from datetime import datetime, timezone
+from typing import Any
+
+from archive.catalog.collections import (
+    PROVIDER_PLACEHOLDER,
+    TITLE_PLACEHOLDER,
+    GridInfo,
+    grids_collection,
+    root_catalog,
+    scans_collection,
+)
+from archive.catalog.grids import discover_grids, store_fingerprint
+from archive.catalog.index import index_items, write_index
+from archive.catalog.items import scan_item
+from archive.catalog.store import Shelf
+from archive.layout import (
+    CATALOG,
+    GRIDS_COLLECTION,
+    LEDGER,
+    SCANS_COLLECTION,
+    ScanId,
+    item_path,
+)
+from archive.records import ScanRecord
+
+log = logging.getLogger(__name__)
+
+
+@dataclass
+class CatalogResult:
+    """What a build or update wrote."""
+
+    written: list[str] = field(default_factory=list)  # shelf-relative paths, in write order
+    removed: list[str] = field(default_factory=list)
+    item_count: int = 0
+    grid_count: int = 0
+    warnings: list[str] = field(default_factory=list)
+
+
+def build_catalog(
+    shelf_url: str,
+    records: Sequence[ScanRecord],
+    grids: Sequence[GridInfo | Mapping[str, Any]] | None = None,
+    settings: Mapping[str, Any] | None = None,
+    storage_options: dict | None = None,
+) -> CatalogResult:
+    """Write the complete catalog for exactly ``records``; Items of other scans are removed.
+
+    ``grids`` describes the Zarr cubes (None: read them from the shelf); ``settings`` is the
+    recipe's [catalog] table (license, title, providers).
+    """
+    shelf = Shelf(shelf_url, storage_options)
+    old = {i["id"]: i for i in index_items(shelf)}
+    keep = {r.scan_id for r in records}
+    return _write(shelf, records, old, [i for i in old if i not in keep], grids, settings or {})
+
+
+def update_catalog(
+    shelf_url: str,
+    new_records: Sequence[ScanRecord],
+    removed_ids: Iterable[str] = (),
+    grids: Sequence[GridInfo | Mapping[str, Any]] | None = None,
+    settings: Mapping[str, Any] | None = None,
+    storage_options: dict | None = None,
+) -> CatalogResult:
+    """Add or replace the Items of ``new_records``, drop ``removed_ids``, refresh the rest.
+
+    ``settings`` None keeps the license, title and providers already in the catalog.
+    """
+    shelf = Shelf(shelf_url, storage_options)
+    old = {i["id"]: i for i in index_items(shelf)}
+    if not old and shelf.exists(SCANS_COLLECTION):
+        old = {i["id"]: i for i in _walk_items(shelf)}
+    if settings is None:
+        settings = settings_from_catalog(shelf)
+    return _write(shelf, new_records, old, list(removed_ids), grids, settings, keep_old=True)
+
+
+def _write(
+    shelf: Shelf,
+    records: Sequence[ScanRecord],
+    old: dict[str, dict[str, Any]],
+    removed_ids: list[str],
+    grids: Sequence[GridInfo | Mapping[str, Any]] | None,
+    settings: Mapping[str, Any],
+    keep_old: bool = False,
+) -> CatalogResult:
+    result = CatalogResult()
+    now = datetime.now(timezone.utc).replace(microsecond=0)
+    items = {k: v for k, v in old.items() if keep_old and k not in removed_ids}
+    for record in records:
+        published = old.get(record.scan_id, {}).get("properties", {}).get("published")
+        item = scan_item(
+            record,
+            published=_parse(published) if published else now,
+            thumbnail=_thumbnail(shelf, record, result),
+        )
+        path = item_path(ScanId.parse(record.scan_id))
+        shelf.write_json(path, item)
+        result.written.append(path)
+        items[record.scan_id] = item
+    rewritten = {r.scan_id for r in records}
+    for scan_id in (s for s in removed_ids if s not in rewritten):
+        items.pop(scan_id, None)
+        path = item_path(ScanId.parse(scan_id))
+        if shelf.exists(path):
+            shelf.remove(path)
+            result.removed.append(path)
+    if not items:
+        raise ValueError(f"no scans to catalog on {shelf.url}: migrate at least one scan first")
+    all_items = list(items.values())
+    scans = scans_collection(all_items, settings)
+    cubes = [GridInfo.coerce(g) for g in grids] if grids is not None else discover_grids(shelf)
+    cubes = [_fingerprinted(shelf, g) for g in cubes]
+    for path, doc in (
+        (SCANS_COLLECTION, scans),
+        (GRIDS_COLLECTION, grids_collection(cubes, settings, scans["extent"])),
+    ):
+        shelf.write_json(path, doc)
+        result.written.append(path)
+    write_index(shelf, all_items, collection={k: v for k, v in scans.items() if k != "links"})
+    result.written.append("scans/items.parquet")
+    shelf.write_json(CATALOG, root_catalog(settings))
+    result.written.append(CATALOG)
+    result.item_count, result.grid_count = len(all_items), len(cubes)
+    return result
+
+
+def _parse(text: str) -> datetime:
+    return datetime.fromisoformat(text.replace("Z", "+00:00"))
+
+
+def _thumbnail(shelf: Shelf, record: ScanRecord, result: CatalogResult) -> tuple[int, str] | None:
+    if not record.preview_href:
+        return None
+    if not shelf.exists(record.preview_href):
+        result.warnings.append(f"{record.scan_id}: preview {record.preview_href} is missing; no thumbnail asset")
+        return None
+    return shelf.size(record.preview_href), shelf.sha256(record.preview_href)
+
+
+def _fingerprinted(shelf: Shelf, g: GridInfo) -> GridInfo:
+    if g.size is not None and g.checksum is not None:
+        return g
+    if not shelf.exists(g.href):
+        raise FileNotFoundError(f"grid cube {shelf.path(g.href)} does not exist; write it before the catalog")
+    size, checksum = store_fingerprint(shelf, g.href)
+    return replace(g, size=size, checksum=checksum)
+
+
+def _walk_items(shelf: Shelf) -> list[dict[str, Any]]:
+    root = shelf.path("scans/items")
+    return [shelf.read_json(p[len(shelf.root) + 1 :]) for p in sorted(shelf.fs.glob(f"{root}/*/*.json"))]
+
+
+def settings_from_catalog(shelf: Shelf) -> dict[str, Any]:
+    """Recover the [catalog] settings from a catalog written earlier (placeholders dropped)."""
+    if not shelf.exists(SCANS_COLLECTION):
+        return {}
+    scans = shelf.read_json(SCANS_COLLECTION)
+    settings: dict[str, Any] = {}
+    if scans.get("license") and scans["license"] != "other":
+        settings["license"] = scans["license"]
+    providers = [p for p in scans.get("providers", []) if p.get("name") != PROVIDER_PLACEHOLDER]
+    if providers:
+        settings["providers"] = providers
+    if shelf.exists(CATALOG):
+        title = shelf.read_json(CATALOG).get("title")
+        if title and title != TITLE_PLACEHOLDER:
+            settings["title"] = title
+    return settings
+
+
+def records_from_ledger(shelf_url: str) -> list[ScanRecord]:
+    """Every finished scan in the shelf's ledger (read-only; the ledger is local only)."""
+    shelf = Shelf(shelf_url)
+    path = shelf.path(LEDGER)
+    if not shelf.exists(LEDGER):
+        raise FileNotFoundError(f"{path} not found: `scanshelf catalog` needs a local shelf written by migrate")
+    con = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
+    try:
+        rows = con.execute("SELECT record FROM scans WHERE status='done'").fetchall()
+    finally:
+        con.close()
+    return [ScanRecord.from_json(r[0]) for r in rows]
+
+
+def rebuild_catalog(
+    shelf_url: str, settings: Mapping[str, Any] | None = None, storage_options: dict | None = None
+) -> CatalogResult:
+    """Rebuild the whole catalog from the ledger and the cubes on the shelf."""
+    records = records_from_ledger(shelf_url)
+    if settings is None:
+        settings = settings_from_catalog(Shelf(shelf_url, storage_options))
+    return build_catalog(shelf_url, records, None, settings, storage_options)

@@ -1,0 +1,96 @@
+"""Describe the Zarr cubes already on a shelf, for the grids Collection.
+
+Reading a cube's metadata and coordinates (small) is enough; the data chunks are only touched
+to fingerprint the store so that ``verify`` can find bit rot in it too.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from datetime import datetime, timezone
+
+import numpy as np
+
+from archive.catalog.collections import GridInfo
+from archive.catalog.store import Shelf, multihash_sha256
+
+
+def store_fingerprint(shelf: Shelf, href: str) -> tuple[int, str]:
+    """(total bytes, multihash) of a directory store.
+
+    The digest is SHA-256 over the sorted lines ``<path inside store>\\t<size>\\t<sha256>\\n``,
+    so it changes when any object in the store changes, is added or is removed.
+    """
+    base = shelf.path(href).rstrip("/")
+    files = sorted(p for p, info in shelf.fs.find(base, detail=True).items() if info["type"] == "file")
+    digest, total = hashlib.sha256(), 0
+    for path in files:
+        rel = path[len(base) + 1 :] if path.startswith(base + "/") else path
+        size = int(shelf.fs.size(path))
+        total += size
+        inner = shelf.sha256(f"{href.rstrip('/')}/{rel}")
+        digest.update(f"{rel}\t{size}\t{inner}\n".encode())
+    return total, multihash_sha256(digest.hexdigest())
+
+
+def discover_grids(shelf: Shelf) -> list[GridInfo]:
+    """Every ``grids/*.zarr`` on the shelf, described from its own metadata."""
+    import xarray as xr
+
+    found = []
+    for path in sorted(shelf.fs.glob(shelf.path("grids/*.zarr"))):
+        rel = "grids/" + path.rstrip("/").rsplit("/", 1)[-1]
+        name = rel[len("grids/") : -len(".zarr")]
+        station, _, product = name.partition("-")
+        ds = xr.open_zarr(shelf.fs.get_mapper(path), zarr_format=3, consolidated=None)
+        try:
+            found.append(_describe(ds, rel, station, product or "elevation"))
+        finally:
+            ds.close()
+    return found
+
+
+def _describe(ds, rel: str, station: str, product: str) -> GridInfo:
+    from pyproj import CRS
+
+    crs_wkt = None
+    for name in ("spatial_ref", "crs"):
+        if name in ds.variables:
+            crs_wkt = ds[name].attrs.get("crs_wkt") or ds[name].attrs.get("spatial_ref")
+    if crs_wkt is None:
+        raise ValueError(f"{rel} has no spatial_ref/crs_wkt attribute; rewrite the cube with its CRS")
+    crs = CRS.from_wkt(crs_wkt)
+    auth = crs.to_authority()
+    x, y = ds["x"].values, ds["y"].values
+    cell = float(abs(x[1] - x[0])) if len(x) > 1 else None
+    half = (cell or 0.0) / 2
+    start = end = None
+    if "time" in ds.coords and ds.sizes.get("time", 0):
+        times = ds["time"].values.astype("datetime64[us]")
+        start, end = (_utc(t) for t in (times.min(), times.max()))
+    variables = {
+        v: {
+            "dimensions": list(ds[v].dims),
+            "unit": ds[v].attrs.get("units"),
+            "description": ds[v].attrs.get("long_name"),
+        }
+        for v in ds.data_vars
+        if v not in ("spatial_ref", "crs")
+    }
+    return GridInfo(
+        href=rel,
+        station=station,
+        product=product,
+        variables=variables,
+        dims={k: int(v) for k, v in ds.sizes.items()},
+        start=start,
+        end=end,
+        bbox=(float(x.min()) - half, float(y.min()) - half, float(x.max()) + half, float(y.max()) + half),
+        crs_wkt=crs.to_wkt(),
+        crs_code=f"{auth[0]}:{auth[1]}" if auth else None,
+        cell=cell,
+    )
+
+
+def _utc(t: np.datetime64) -> datetime:
+    return datetime.fromisoformat(str(t)).replace(tzinfo=timezone.utc)

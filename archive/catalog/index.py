@@ -1,0 +1,181 @@
+"""The search index: every scan Item as one row of ``scans/items.parquet`` (STAC-GeoParquet).
+
+A search by area and time reads a few small columns and, thanks to the sort by station and
+time and small row groups, only the row groups whose statistics intersect; the full Item JSON
+rides along in ``item_json`` so readers rebuild pystac Items without fetching each file.
+Asset hrefs here are relative to the shelf ROOT (not to the Item file); the file's key-value
+metadata says so under ``scanshelf``.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+from datetime import datetime
+from typing import Any
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+import shapely
+from shapely.geometry import shape
+
+from archive.catalog import extensions as ext
+from archive.catalog.store import Shelf, resolve_href
+from archive.layout import SCANS_INDEX, ScanId, item_path
+
+ROW_GROUP_ROWS = 256  # a few hundred Items: a `find` by station and time reads one or two groups
+GEOPARQUET_VERSION = "1.1.0"
+STAC_GEOPARQUET_VERSION = "1.0.0"  # version string of the STAC-GeoParquet metadata key (from memory)
+
+_ASSET = pa.struct(
+    [
+        ("href", pa.string()),
+        ("type", pa.string()),
+        ("file:size", pa.int64()),
+        ("file:checksum", pa.string()),
+    ]
+)
+_TIME = pa.timestamp("us", tz="UTC")
+
+SCHEMA = pa.schema(
+    [
+        ("id", pa.string()),
+        ("collection", pa.string()),
+        ("type", pa.string()),
+        ("stac_version", pa.string()),
+        ("stac_extensions", pa.list_(pa.string())),
+        ("datetime", _TIME),
+        ("start_datetime", _TIME),
+        ("end_datetime", _TIME),
+        ("geometry", pa.binary()),
+        ("bbox", pa.struct([(k, pa.float64()) for k in ("xmin", "ymin", "xmax", "ymax")])),
+        ("scanshelf:station", pa.string()),
+        ("proj:code", pa.string()),
+        ("proj:bbox", pa.list_(pa.float64())),
+        ("pc:count", pa.int64()),
+        ("scanshelf:partial", pa.bool_()),
+        ("assets", pa.struct([("points", _ASSET), ("thumbnail", _ASSET)])),
+        ("item_json", pa.string()),
+    ]
+)
+
+
+def _time(text: str | None) -> datetime | None:
+    return datetime.fromisoformat(text.replace("Z", "+00:00")) if text else None
+
+
+def _asset_row(item_file: str, asset: dict[str, Any] | None) -> dict[str, Any] | None:
+    if asset is None:
+        return None
+    return {
+        "href": resolve_href(item_file, asset["href"]),
+        "type": asset.get("type"),
+        "file:size": asset.get("file:size"),
+        "file:checksum": asset.get("file:checksum"),
+    }
+
+
+def _sort_key(item: dict[str, Any]) -> tuple[str, str]:
+    return item["properties"][f"{ext.PREFIX}station"], item["properties"]["datetime"]
+
+
+def index_table(items: list[dict[str, Any]]) -> pa.Table:
+    """Rows in station-then-time order, built from exactly the Item dicts written as JSON."""
+    rows = []
+    for item in sorted(items, key=_sort_key):
+        p = item["properties"]
+        here = item_path(ScanId.parse(item["id"]))
+        b = item["bbox"]
+        xmin, ymin, xmax, ymax = (b[0], b[1], b[3], b[4]) if len(b) == 6 else b
+        rows.append(
+            {
+                "id": item["id"],
+                "collection": item.get("collection"),
+                "type": item["type"],
+                "stac_version": item["stac_version"],
+                "stac_extensions": item.get("stac_extensions", []),
+                "datetime": _time(p.get("datetime")),
+                "start_datetime": _time(p.get("start_datetime")),
+                "end_datetime": _time(p.get("end_datetime")),
+                "geometry": shapely.to_wkb(shape(item["geometry"]), flavor="iso"),
+                "bbox": {"xmin": xmin, "ymin": ymin, "xmax": xmax, "ymax": ymax},
+                "scanshelf:station": p[f"{ext.PREFIX}station"],
+                "proj:code": p.get("proj:code"),
+                "proj:bbox": p.get("proj:bbox"),
+                "pc:count": p["pc:count"],
+                "scanshelf:partial": bool(p.get(f"{ext.PREFIX}partial", False)),
+                "assets": {
+                    "points": _asset_row(here, item["assets"].get("points")),
+                    "thumbnail": _asset_row(here, item["assets"].get("thumbnail")),
+                },
+                "item_json": json.dumps(item, separators=(",", ":"), ensure_ascii=False),
+            }
+        )
+    return pa.Table.from_pylist(rows, schema=SCHEMA)
+
+
+def _file_metadata(table: pa.Table, collection: dict[str, Any] | None) -> dict[bytes, bytes]:
+    geoms = shapely.from_wkb(table.column("geometry").to_numpy(zero_copy_only=False))
+    types = sorted({g.geom_type for g in geoms}) if len(geoms) else []
+    bounds = list(shapely.total_bounds(geoms)) if len(geoms) else []
+    geo = {
+        "version": GEOPARQUET_VERSION,
+        "primary_column": "geometry",
+        "columns": {
+            "geometry": {
+                "encoding": "WKB",
+                "geometry_types": types,
+                # no "crs" key: GeoParquet's default is OGC:CRS84 (lon/lat), as GeoJSON
+                "bbox": bounds,
+                "covering": {
+                    "bbox": {k: ["bbox", k] for k in ("xmin", "ymin", "xmax", "ymax")}
+                },
+            }
+        },
+    }
+    stac_meta: dict[str, Any] = {"version": STAC_GEOPARQUET_VERSION}
+    if collection is not None:
+        stac_meta["collections"] = {collection["id"]: collection}
+    own = {
+        "asset_hrefs": "relative to the shelf root (unlike the Item JSON, whose hrefs are "
+        "relative to the Item file)",
+        "item_json": "the full Item exactly as written to scans/items/<station>/<id>.json",
+        "sort": ["scanshelf:station", "datetime"],
+    }
+    return {
+        b"geo": json.dumps(geo).encode(),
+        b"stac-geoparquet": json.dumps(stac_meta).encode(),
+        b"scanshelf": json.dumps(own).encode(),
+    }
+
+
+def write_index(
+    shelf: Shelf, items: list[dict[str, Any]], collection: dict[str, Any] | None = None
+) -> pa.Table:
+    """Write ``scans/items.parquet`` atomically; returns the table written."""
+    table = index_table(items)
+    table = table.replace_schema_metadata(_file_metadata(table, collection))
+    buf = io.BytesIO()
+    pq.write_table(
+        table,
+        buf,
+        row_group_size=ROW_GROUP_ROWS,
+        compression="zstd",
+        write_statistics=True,
+        use_dictionary=["collection", "scanshelf:station", "proj:code", "type", "stac_version"],
+    )
+    shelf.write_bytes(SCANS_INDEX, buf.getvalue())
+    return table
+
+
+def read_index(shelf: Shelf, columns: list[str] | None = None) -> pa.Table:
+    """The index as an Arrow table (all columns unless ``columns`` is given)."""
+    with shelf.fs.open(shelf.path(SCANS_INDEX), "rb") as f:
+        return pq.read_table(f, columns=columns)
+
+
+def index_items(shelf: Shelf) -> list[dict[str, Any]]:
+    """Every Item dict stored in the index, in index order."""
+    if not shelf.exists(SCANS_INDEX):
+        return []
+    return [json.loads(t) for t in read_index(shelf, ["item_json"]).column("item_json").to_pylist()]

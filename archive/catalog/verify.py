@@ -1,0 +1,182 @@
+"""Check a shelf against its own catalog: schemas, hrefs, sizes, checksums, counts, index.
+
+A shelf read from elsewhere is untrusted, so every href is resolved inside the shelf root and
+anything absolute or escaping is reported rather than followed. Every problem names the file.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from typing import Any
+
+import pyarrow.parquet as pq
+
+from archive.catalog import schema
+from archive.catalog.grids import store_fingerprint
+from archive.catalog.index import index_table, read_index
+from archive.catalog.store import Shelf, multihash_sha256, resolve_href
+from archive.layout import CATALOG, SCANS_INDEX
+
+
+@dataclass
+class VerifyReport:
+    """Outcome of ``verify_shelf``: ``ok`` when ``problems`` is empty."""
+
+    shelf: str
+    problems: list[str] = field(default_factory=list)
+    documents: int = 0
+    assets: int = 0
+    bytes_checked: int = 0
+
+    @property
+    def ok(self) -> bool:
+        return not self.problems
+
+    def summary(self) -> str:
+        head = (
+            f"{self.shelf}: {self.documents} STAC documents, {self.assets} assets "
+            f"({self.bytes_checked / 1e6:.1f} MB read) checked"
+        )
+        if self.ok:
+            return head + " - all good"
+        return "\n".join([head + f" - {len(self.problems)} problem(s):", *("  " + p for p in self.problems)])
+
+
+def verify_shelf(
+    shelf_url: str, online: bool = False, quick: bool = False, storage_options: dict | None = None
+) -> VerifyReport:
+    """Validate every catalog document and check every asset against its file.
+
+    ``quick`` compares sizes only (no checksums, no point counts); ``online`` also validates
+    against the official extension schemas by URL.
+    """
+    shelf = Shelf(shelf_url, storage_options)
+    report = VerifyReport(shelf=shelf.url)
+    if not shelf.exists(CATALOG):
+        report.problems.append(f"{CATALOG}: missing - not a shelf, or its catalog was never written")
+        return report
+    items: dict[str, dict[str, Any]] = {}
+    todo = [CATALOG]
+    seen: set[str] = set()
+    while todo:
+        path = todo.pop(0)
+        if path in seen:
+            continue
+        seen.add(path)
+        doc = _load(shelf, path, report)
+        if doc is None:
+            continue
+        report.documents += 1
+        report.problems += [f"{path}: {p}" for p in schema.validate(doc, online=online)]
+        if doc.get("type") == "Feature":
+            items[path] = doc
+        for link in doc.get("links", []):
+            target = _resolve(path, link.get("href", ""), report)
+            if target is None:
+                continue
+            if link.get("rel") in ("child", "item"):
+                todo.append(target)
+            elif not shelf.exists(target):
+                report.problems.append(f"{path}: link rel={link.get('rel')} -> {target} does not exist")
+        for key, asset in doc.get("assets", {}).items():
+            _check_asset(shelf, path, key, asset, doc, quick, report)
+    _check_index(shelf, items, report)
+    return report
+
+
+def _load(shelf: Shelf, path: str, report: VerifyReport) -> dict[str, Any] | None:
+    if not shelf.exists(path):
+        report.problems.append(f"{path}: linked from the catalog but missing")
+        return None
+    try:
+        return shelf.read_json(path)
+    except ValueError as err:
+        report.problems.append(f"{path}: {err}")
+        return None
+
+
+def _resolve(path: str, href: str, report: VerifyReport) -> str | None:
+    try:
+        return resolve_href(path, href)
+    except ValueError as err:
+        report.problems.append(f"{path}: {err}")
+        return None
+
+
+def _check_asset(
+    shelf: Shelf, path: str, key: str, asset: dict, doc: dict, quick: bool, report: VerifyReport
+) -> None:
+    target = _resolve(path, asset.get("href", ""), report)
+    if target is None:
+        return
+    report.assets += 1
+    where = f"{target} (asset '{key}' of {path})"
+    if not shelf.exists(target):
+        report.problems.append(f"{where}: file missing")
+        return
+    is_store = shelf.fs.isdir(shelf.path(target))
+    if is_store:
+        if quick:
+            size, checksum = sum(i["size"] for i in shelf.fs.find(shelf.path(target), detail=True).values()), None
+        else:
+            size, checksum = store_fingerprint(shelf, target)
+        expected_sum = asset.get("scanshelf:store_checksum")
+    else:
+        size = shelf.size(target)
+        checksum = None if quick else multihash_sha256(shelf.sha256(target))
+        expected_sum = asset.get("file:checksum")
+    if not quick:
+        report.bytes_checked += size
+    if "file:size" in asset and asset["file:size"] != size:
+        report.problems.append(f"{where}: size is {size} bytes, catalog says {asset['file:size']}")
+    if expected_sum is None:
+        report.problems.append(f"{where}: no checksum in the catalog")
+    elif checksum is not None and checksum != expected_sum:
+        report.problems.append(f"{where}: checksum differs from the catalog (file changed or damaged)")
+    if not quick and key == "points" and "pc:count" in doc.get("properties", {}):
+        with shelf.fs.open(shelf.path(target), "rb") as f:
+            try:
+                rows = pq.ParquetFile(f).metadata.num_rows
+            except Exception as err:  # a damaged footer is a finding, not a crash
+                report.problems.append(f"{where}: not readable as Parquet: {err}")
+                return
+        if rows != doc["properties"]["pc:count"]:
+            report.problems.append(f"{where}: holds {rows} points, catalog says {doc['properties']['pc:count']}")
+
+
+def _check_index(shelf: Shelf, items: dict[str, dict[str, Any]], report: VerifyReport) -> None:
+    """The index must hold exactly the Items linked from the scans Collection, unchanged."""
+    if not shelf.exists(SCANS_INDEX):
+        report.problems.append(f"{SCANS_INDEX}: missing")
+        return
+    try:
+        table = read_index(shelf)
+        meta = table.schema.metadata or {}
+    except Exception as err:
+        report.problems.append(f"{SCANS_INDEX}: not readable: {err}")
+        return
+    if b"geo" not in meta or "covering" not in json.loads(meta[b"geo"])["columns"]["geometry"]:
+        report.problems.append(f"{SCANS_INDEX}: GeoParquet 'geo' metadata with a bbox covering is missing")
+    if b"stac-geoparquet" not in meta:
+        report.problems.append(f"{SCANS_INDEX}: 'stac-geoparquet' metadata is missing")
+    by_id = {d["id"]: d for d in items.values()}
+    indexed = table.column("id").to_pylist()
+    for missing in sorted(set(by_id) - set(indexed)):
+        report.problems.append(f"{SCANS_INDEX}: Item {missing} is in the catalog but not in the index")
+    for extra in sorted(set(indexed) - set(by_id)):
+        report.problems.append(f"{SCANS_INDEX}: row {extra} has no Item JSON in the catalog")
+    if set(indexed) != set(by_id) or len(indexed) != len(set(indexed)):
+        return
+    expected = index_table(list(by_id.values()))
+    for name in expected.column_names:
+        if name not in table.column_names:
+            report.problems.append(f"{SCANS_INDEX}: column {name!r} missing")
+        elif name == "item_json":
+            got = [json.loads(t) for t in table.column(name).to_pylist()]
+            want = [json.loads(t) for t in expected.column(name).to_pylist()]
+            for g, w in zip(got, want):
+                if g != w:
+                    report.problems.append(f"{SCANS_INDEX}: item_json of {w['id']} differs from its Item JSON")
+        elif table.column(name).to_pylist() != expected.column(name).to_pylist():
+            report.problems.append(f"{SCANS_INDEX}: column {name!r} does not match the Item JSON files")

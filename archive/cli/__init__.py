@@ -1,0 +1,44 @@
+"""The ``scanshelf`` command: a thin skin over the library.
+
+Each command parses its options, calls one library function and prints its result; the logic
+lives in the library so that everything here can also be done from Python.
+"""
+
+from __future__ import annotations
+
+import logging
+import sys
+
+import click
+
+from archive.cli.common import fail_cleanly
+from archive.cli.points import migrate_command, survey_command
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+@click.version_option(package_name="scanshelf")
+@click.option("-v", "--verbose", count=True, help="More log output (-vv for debug).")
+def cli(verbose: int) -> None:
+    """Migrate, publish and subset archives of repeated laser scans.
+
+    \b
+    A typical first day with a legacy archive:
+      scanshelf demo ./demo                       # or use your own source folder
+      scanshelf survey ./demo/source              # what is there, what is broken
+      scanshelf migrate ./demo/source ./shelf     # Parquet points, Zarr grids, STAC catalog
+      scanshelf verify ./shelf                    # validate the catalog and checksums
+      scanshelf publish ./shelf file:///srv/www/shelf
+      scanshelf find ./shelf --bbox 500100 7650100 500300 7650300
+    """
+    logging.basicConfig(level=[logging.WARNING, logging.INFO, logging.DEBUG][min(verbose, 2)],
+                        format="%(levelname)s %(name)s: %(message)s")
+
+
+for command in (survey_command, migrate_command):
+    cli.add_command(command)
+
+
+def main() -> None:
+    with fail_cleanly():
+        cli(standalone_mode=True)
+    sys.exit(0)

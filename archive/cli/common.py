@@ -1,0 +1,46 @@
+"""Shared pieces of the command line: option parsing helpers and error presentation."""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import sys
+from typing import Any, Iterator
+
+import click
+
+from archive.recipe import RecipeError
+
+
+@contextlib.contextmanager
+def fail_cleanly() -> Iterator[None]:
+    """Known errors become one readable line and exit code 2, not a traceback."""
+    try:
+        yield
+    except (RecipeError, FileNotFoundError, ValueError) as exc:
+        click.echo(f"scanshelf: error: {exc}", err=True)
+        sys.exit(2)
+
+
+def parse_storage_options(pairs: tuple[str, ...]) -> dict[str, Any]:
+    """``key=value`` pairs → a dict; values that parse as JSON (numbers, true/false) are converted."""
+    options: dict[str, Any] = {}
+    for pair in pairs:
+        key, sep, value = pair.partition("=")
+        if not sep or not key:
+            raise click.BadParameter(f"{pair!r} is not key=value", param_hint="--storage-option")
+        try:
+            options[key] = json.loads(value)
+        except json.JSONDecodeError:
+            options[key] = value
+    return options
+
+
+storage_option = click.option(
+    "--storage-option", "storage_options", multiple=True, metavar="KEY=VALUE",
+    help="fsspec storage option (repeatable), e.g. endpoint_url=http://127.0.0.1:9000 or anon=true. "
+         "Credentials are best left to the environment.",
+)
+recipe_option = click.option("--recipe", type=click.Path(exists=True, dir_okay=False), help="Recipe TOML file.")
+crs_option = click.option("--crs", help="CRS for files that declare none, e.g. EPSG:32633 (overrides the recipe).")
+quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress bars.")

@@ -1,0 +1,69 @@
+"""``survey`` and ``migrate``: from a legacy source to a shelf."""
+
+from __future__ import annotations
+
+import sys
+
+import click
+
+from archive.cli.common import crs_option, parse_storage_options, quiet_option, recipe_option, storage_option
+
+
+@click.command("survey")
+@click.argument("source")
+@recipe_option
+@crs_option
+@click.option("-o", "--output", default="survey.parquet", show_default=True, help="Where to write the survey table (Parquet).")
+@click.option("--quick", is_flag=True, help="Read headers only (no point pass): faster, finds less.")
+@storage_option
+@quiet_option
+def survey_command(source, recipe, crs, output, quick, storage_options, quiet) -> None:
+    """Inventory a SOURCE archive: every file, its station, time, points, CRS and problems.
+
+    SOURCE is a folder or any fsspec URL (s3://bucket/archive, ...). The whole walk always
+    finishes; the exit code is 0 only when every file is usable.
+
+    \b
+    Example:
+      scanshelf survey /mnt/labserver/tls --crs EPSG:32633 -o survey.parquet
+    """
+    from archive.survey import survey
+
+    result = survey(source, recipe, crs, storage_options=parse_storage_options(storage_options),
+                    deep=not quick, progress=not quiet)
+    result.write(output)
+    click.echo(result.summary())
+    click.echo(f"\nsurvey table written to {output}")
+    sys.exit(0 if result.ok else 1)
+
+
+@click.command("migrate")
+@click.argument("source")
+@click.argument("shelf", type=click.Path(file_okay=False))
+@recipe_option
+@crs_option
+@click.option("--salvage", is_flag=True, help="Convert the readable points of damaged files and mark those scans partial.")
+@click.option("--cell", type=float, help="Grid cell size in metres for the elevation cubes (default: recipe, else 1).")
+@click.option("--no-previews", is_flag=True, help="Do not render a preview PNG per scan.")
+@storage_option
+@quiet_option
+def migrate_command(source, shelf, recipe, crs, salvage, cell, no_previews, storage_options, quiet) -> None:
+    """Convert every scan in SOURCE into the local SHELF folder.
+
+    Each scan becomes a spatially sorted Parquet file under points/, its elevation a time step
+    in grids/<station>.zarr, and a STAC Item in the catalog. Bad files never stop the run: they
+    are listed at the end and make the exit code 1. Re-running the same command skips what is
+    done and finishes the rest; new or changed source files are converted.
+
+    \b
+    Example:
+      scanshelf migrate /mnt/labserver/tls ./shelf --recipe site.toml
+      scanshelf migrate ./demo/source ./shelf --salvage
+    """
+    from archive.migrate import migrate
+
+    result = migrate(source, shelf, recipe, crs, salvage=salvage, cell=cell,
+                     storage_options=parse_storage_options(storage_options), progress=not quiet,
+                     previews=not no_previews)
+    click.echo(result.summary())
+    sys.exit(0 if result.ok else 1)

@@ -1,0 +1,251 @@
+"""A station's elevation cube in Zarr v3: one time step per scan, appended as scans arrive.
+
+Two layouts live in one store, because no single chunking serves both common reads:
+
+* the root group ("map layout") holds one shard per epoch and variable — shard ``(1, NY, NX)``
+  split into inner chunks of ``(1, 256, 256)``. Reading one epoch's map is one object and almost
+  exactly its own bytes; appending an epoch only *adds* objects, so earlier epochs' chunks are
+  never rewritten.
+* the ``series`` group ("series layout") is a derived copy built by :func:`write_series` after a
+  batch of appends: shard ``(T, 16, 16)`` of inner chunks ``(T, 1, 1)``, so one pixel's whole time
+  series is one shard read — its 4 KiB index plus one chunk of T values. Readers ignore it when
+  it is stale (its scan ids differ from the root's).
+
+Scans may arrive in any order (parallel or resumed migrations): steps are stored in arrival
+order with a ``scan_id`` coordinate along time, and :func:`open_cube` returns them sorted by
+time. Writing a scan id that is already present replaces its step in place (never a duplicate).
+One writer per station cube at a time.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import uuid
+import warnings
+from datetime import datetime, timezone
+
+import fsspec
+import numpy as np
+import pandas as pd
+import xarray as xr
+import zarr
+from pyproj import CRS
+from zarr.codecs import ZstdCodec
+
+from archive.grids.binning import EpochGrid
+from archive.grids.spec import GridSpec
+
+SPEC_ATTR = "scanshelf:grid_spec"
+SERIES_GROUP = "series"
+MAP_CHUNK = 256  # inner chunk edge of the map layout (cells)
+SERIES_TILE = 16  # shard edge of the series layout (cells): 256 pixels per shard
+TIME_CHUNK = 4096  # 1-D time/scan_id coordinates: one small object, rewritten on append
+CUBE_VARS = ("elevation", "elevation_std", "point_count")
+
+warnings.filterwarnings("ignore", message="Consolidated metadata is currently not part", category=UserWarning)
+
+VARIABLE_ATTRS = {
+    "elevation": {
+        "units": "m",
+        "long_name": "mean elevation of the points in the cell",
+        "standard_name": "surface_altitude",
+        "cell_methods": "area: mean",
+    },
+    "elevation_std": {
+        "units": "m",
+        "long_name": "population standard deviation (ddof=0) of point elevations in the cell",
+        "cell_methods": "area: standard_deviation",
+    },
+    "point_count": {"units": "1", "long_name": "number of points in the cell"},
+}
+
+
+def _fs(url: str, storage_options: dict | None):
+    fs, path = fsspec.core.url_to_fs(url, **(storage_options or {}))
+    return fs, path
+
+
+def _utc(t: datetime) -> np.datetime64:
+    if t.tzinfo is None:
+        raise ValueError(f"scan time {t!r} must be timezone-aware (UTC)")
+    return np.datetime64(t.astimezone(timezone.utc).replace(tzinfo=None), "ns")
+
+
+def spatial_ref_attrs(spec: GridSpec) -> dict:
+    """CF grid-mapping attributes (``crs_wkt`` & co. from pyproj) plus GDAL's ``GeoTransform``."""
+    attrs = CRS.from_user_input(spec.crs_wkt).to_cf() if spec.crs_wkt else {}
+    attrs["GeoTransform"] = " ".join(str(v) for v in spec.transform.to_gdal())
+    return attrs
+
+
+def coords_for(spec: GridSpec) -> dict:
+    crs = CRS.from_user_input(spec.crs_wkt) if spec.crs_wkt else None
+    unit = (crs.axis_info[0].unit_name if crs and crs.axis_info else "m").replace("metre", "m")
+    x = xr.Variable("x", spec.x, {"standard_name": "projection_x_coordinate", "long_name": "easting of cell centre", "units": unit, "axis": "X"})
+    y = xr.Variable("y", spec.y, {"standard_name": "projection_y_coordinate", "long_name": "northing of cell centre", "units": unit, "axis": "Y"})
+    return {"x": x, "y": y, "spatial_ref": xr.Variable((), np.int64(0), spatial_ref_attrs(spec))}
+
+
+def epoch_dataset(spec: GridSpec, time: datetime, scan_id: str, epoch: EpochGrid) -> xr.Dataset:
+    """One time step as a CF-annotated dataset (time length 1)."""
+    data = {}
+    for name in CUBE_VARS:
+        attrs = dict(VARIABLE_ATTRS[name])
+        if spec.crs_wkt:
+            attrs["grid_mapping"] = "spatial_ref"
+        data[name] = (("time", "y", "x"), getattr(epoch, name)[np.newaxis], attrs)
+    data["points_outside"] = (("time",), np.array([epoch.outside], np.uint64),
+                              {"units": "1", "long_name": "points of the scan outside the station grid (kept in the points archive)"})
+    ds = xr.Dataset(data, coords=coords_for(spec))
+    ds = ds.assign_coords(
+        time=xr.Variable("time", np.array([_utc(time)]), {"standard_name": "time", "long_name": "scan start time (UTC)"}),
+        scan_id=xr.Variable("time", np.array([scan_id], dtype=object), {"long_name": "scan id"}),
+    )
+    ds.attrs = {"Conventions": "CF-1.10", "title": f"elevation cube of station {spec.station}",
+                SPEC_ATTR: spec.to_dict()}
+    return ds
+
+
+def map_encoding(spec: GridSpec) -> dict:
+    """Map layout: one shard per epoch and variable, inner chunks (1, 256, 256)."""
+    cy, cx = min(MAP_CHUNK, spec.ny), min(MAP_CHUNK, spec.nx)
+    shard = (1, math.ceil(spec.ny / cy) * cy, math.ceil(spec.nx / cx) * cx)
+    enc = {v: {"chunks": (1, cy, cx), "shards": shard, "compressors": [ZstdCodec(level=3)]} for v in CUBE_VARS}
+    enc["point_count"]["fill_value"] = 0
+    enc["time"] = {"chunks": (TIME_CHUNK,), "units": "seconds since 1970-01-01", "calendar": "proleptic_gregorian", "dtype": "int64"}
+    enc["scan_id"] = {"chunks": (TIME_CHUNK,)}
+    enc["points_outside"] = {"chunks": (TIME_CHUNK,)}
+    return enc
+
+
+def read_spec(cube_url: str, storage_options: dict | None = None) -> GridSpec | None:
+    """The spec stored in an existing cube's attributes, or None when there is no cube."""
+    fs, path = _fs(cube_url, storage_options)
+    if not fs.exists(f"{path}/zarr.json"):
+        return None
+    with fs.open(f"{path}/zarr.json", "rb") as f:
+        meta = json.load(f)
+    d = meta.get("attributes", {}).get(SPEC_ATTR)
+    if d is None:
+        raise ValueError(f"{cube_url} is a Zarr store but not a scanshelf elevation cube (no {SPEC_ATTR!r} attribute)")
+    return GridSpec.from_dict(d)
+
+
+def _scan_ids(cube_url: str, storage_options: dict | None) -> np.ndarray:
+    ds = xr.open_zarr(cube_url, storage_options=storage_options, zarr_format=3, consolidated=True)
+    return np.asarray(ds["scan_id"].values, dtype=object)
+
+
+def write_epoch(
+    cube_url: str,
+    spec: GridSpec,
+    time: datetime,
+    scan_id: str,
+    epoch: EpochGrid,
+    storage_options: dict | None = None,
+) -> int:
+    """Add (or replace) one scan's time step; returns its storage index along time.
+
+    The first call creates the cube under a temporary name and renames it into place. Later
+    calls append, writing only the new epoch's shards plus the small time/scan_id coordinates;
+    a scan id already present (or a slot left empty by an interrupted append) is overwritten in
+    place.
+    """
+    step = epoch_dataset(spec, time, scan_id, epoch)
+    existing = read_spec(cube_url, storage_options)
+    if existing is None:
+        fs, path = _fs(cube_url, storage_options)
+        suffix = f".tmp-{uuid.uuid4().hex[:8]}"
+        step.to_zarr(cube_url.rstrip("/") + suffix, storage_options=storage_options, zarr_format=3,
+                     consolidated=True, mode="w-", encoding=map_encoding(spec))
+        fs.mv(path.rstrip("/") + suffix, path, recursive=True)
+        return 0
+    if existing != spec:
+        raise ValueError(
+            f"{cube_url} was built on a different grid ({existing}); re-grid the station with "
+            f"`scanshelf grid SHELF --station {spec.station}` or reuse the stored spec (read_spec)"
+        )
+    ids = _scan_ids(cube_url, storage_options)
+    slot = np.flatnonzero(ids == scan_id)
+    if slot.size == 0:
+        slot = np.flatnonzero((ids == "") | pd.isna(ids))  # left by an interrupted append
+    if slot.size:
+        i = int(slot[0])
+        step.drop_vars(["x", "y", "spatial_ref"]).to_zarr(
+            cube_url, storage_options=storage_options, zarr_format=3, consolidated=True,
+            region={"time": slice(i, i + 1)},
+        )
+        return i
+    step.to_zarr(cube_url, storage_options=storage_options, zarr_format=3, consolidated=True, append_dim="time")
+    return int(ids.size)
+
+
+def open_cube(
+    url: str,
+    storage_options: dict | None = None,
+    layout: str = "map",
+) -> xr.Dataset:
+    """The cube as a lazy dask-backed dataset sorted by time.
+
+    ``layout="map"`` reads whole-map shards (one object per epoch): for maps and differences.
+    ``layout="series"`` reads the time-series copy (one object per 16 × 16 pixels, all epochs):
+    for pixel or small-window histories; it raises if the copy is missing or stale.
+    """
+    if layout not in ("map", "series"):
+        raise ValueError("layout must be 'map' or 'series'")
+    root = xr.open_zarr(url, storage_options=storage_options, zarr_format=3, consolidated=True, chunks={})
+    if layout == "series":
+        try:
+            ds = xr.open_zarr(url, group=SERIES_GROUP, storage_options=storage_options, zarr_format=3,
+                              consolidated=True, chunks={})
+        except (FileNotFoundError, KeyError, zarr.errors.GroupNotFoundError) as e:
+            raise ValueError(f"{url} has no series copy; build it with archive.grids.write_series") from e
+        live = root["scan_id"].values
+        live = set(live[live != ""])
+        if set(ds["scan_id"].values) != live:
+            raise ValueError(f"the series copy of {url} is stale; rebuild it with archive.grids.write_series")
+        return ds
+    ok = root["scan_id"].values != ""
+    if not ok.all():
+        root = root.isel(time=np.flatnonzero(ok))
+    return root.sortby("time")
+
+
+def series_encoding(ds: xr.Dataset) -> dict:
+    """Series layout: shard (T, 16, 16) of inner chunks (T, 1, 1)."""
+    t = max(1, ds.sizes["time"])
+    ty, tx = min(SERIES_TILE, ds.sizes["y"]), min(SERIES_TILE, ds.sizes["x"])
+    enc = {v: {"chunks": (t, 1, 1), "shards": (t, ty, tx), "compressors": [ZstdCodec(level=3)]} for v in CUBE_VARS}
+    enc["point_count"]["fill_value"] = 0
+    enc["time"] = {"units": "seconds since 1970-01-01", "calendar": "proleptic_gregorian", "dtype": "int64"}
+    return enc
+
+
+def write_series(cube_url: str, storage_options: dict | None = None) -> None:
+    """(Re)build the time-series copy from the map layout, sorted by time.
+
+    A full rewrite of the copy (cost: one read and one write of the cube); run it once after a
+    batch of appends, not per scan.
+    """
+    ds = open_cube(cube_url, storage_options)
+    ds = ds[list(CUBE_VARS)]
+    ty, tx = min(SERIES_TILE, ds.sizes["y"]), min(SERIES_TILE, ds.sizes["x"])
+    # dask chunks: whole shards, several per task to keep the graph small
+    ds = ds.chunk({"time": -1, "y": ty * max(1, 128 // ty), "x": tx * max(1, 128 // tx)})
+    for v in ds.variables.values():
+        v.encoding = {}
+    ds.to_zarr(cube_url, group=SERIES_GROUP, storage_options=storage_options, zarr_format=3,
+               consolidated=False, mode="w", encoding=series_encoding(ds))
+    zarr.consolidate_metadata(zarr_store(cube_url, storage_options))
+
+
+def zarr_store(url: str, storage_options: dict | None = None):
+    """A zarr-python store for a local path or any fsspec URL."""
+    from fsspec.implementations.local import LocalFileSystem
+    from zarr.storage import FsspecStore, LocalStore
+
+    fs, path = _fs(url, storage_options)
+    if isinstance(fs, LocalFileSystem):
+        return LocalStore(path)
+    return FsspecStore.from_url(url, storage_options=storage_options)

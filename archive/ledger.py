@@ -1,0 +1,194 @@
+"""The ledger: the migration's transactional record of every source file and every scan.
+
+SQLite in the shelf (``ledger.sqlite``). Only the process that coordinates a migration writes
+it, one transaction per finished file, after the file's outputs were renamed into place — so
+a killed run leaves either a finished entry or none, never half of one.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Iterator
+
+from archive.records import ScanRecord
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS files (
+    relpath TEXT PRIMARY KEY,
+    size INTEGER,
+    mtime REAL,
+    sha256 TEXT,
+    kind TEXT,
+    status TEXT,          -- done | partial | duplicate | failed | ignored
+    station TEXT,
+    scan_id TEXT,
+    outputs TEXT,         -- JSON list of shelf-relative paths
+    error TEXT,
+    updated TEXT
+);
+CREATE TABLE IF NOT EXISTS scans (
+    scan_id TEXT PRIMARY KEY,
+    station TEXT,
+    status TEXT,          -- done
+    record TEXT,          -- ScanRecord JSON
+    source_relpath TEXT,
+    source_sha256 TEXT,
+    updated TEXT
+);
+CREATE TABLE IF NOT EXISTS history (
+    relpath TEXT,
+    sha256 TEXT,
+    scan_id TEXT,
+    replaced TEXT
+);
+CREATE TABLE IF NOT EXISTS inspections (
+    relpath TEXT PRIMARY KEY,
+    size INTEGER,
+    mtime REAL,
+    report TEXT           -- FileReport JSON: a re-run does not read unchanged files again
+);
+CREATE TABLE IF NOT EXISTS settings (
+    key TEXT PRIMARY KEY,
+    value TEXT
+);
+"""
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+@dataclass(frozen=True)
+class FileEntry:
+    relpath: str
+    size: int
+    sha256: str
+    kind: str
+    status: str
+    station: str | None
+    scan_id: str | None
+    outputs: tuple[str, ...]
+    error: str | None
+
+
+class Ledger:
+    """A thin, typed layer over the SQLite file."""
+
+    def __init__(self, path: str | Path) -> None:
+        self.path = Path(path)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self._db = sqlite3.connect(self.path, timeout=60, isolation_level=None)
+        self._db.execute("PRAGMA journal_mode=WAL")
+        self._db.execute("PRAGMA synchronous=FULL")
+        self._db.executescript(SCHEMA)
+
+    def close(self) -> None:
+        self._db.close()
+
+    def __enter__(self) -> "Ledger":
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    # settings -------------------------------------------------------------------------------
+    def setting(self, key: str) -> Any | None:
+        row = self._db.execute("SELECT value FROM settings WHERE key = ?", (key,)).fetchone()
+        return json.loads(row[0]) if row else None
+
+    def set_setting(self, key: str, value: Any) -> None:
+        self._db.execute("INSERT OR REPLACE INTO settings VALUES (?, ?)", (key, json.dumps(value)))
+
+    # inspections ----------------------------------------------------------------------------
+    def inspection(self, relpath: str, size: int, mtime: float | None) -> str | None:
+        row = self._db.execute("SELECT size, mtime, report FROM inspections WHERE relpath = ?", (relpath,)).fetchone()
+        if row and row[0] == size and mtime is not None and row[1] == mtime:
+            return row[2]
+        return None
+
+    def save_inspection(self, relpath: str, size: int, mtime: float | None, report: str) -> None:
+        self._db.execute("INSERT OR REPLACE INTO inspections VALUES (?, ?, ?, ?)", (relpath, size, mtime, report))
+
+    # files and scans ------------------------------------------------------------------------
+    def file(self, relpath: str) -> FileEntry | None:
+        row = self._db.execute(
+            "SELECT relpath, size, sha256, kind, status, station, scan_id, outputs, error FROM files WHERE relpath = ?",
+            (relpath,),
+        ).fetchone()
+        if row is None:
+            return None
+        return FileEntry(*row[:7], tuple(json.loads(row[7] or "[]")), row[8])
+
+    def files(self) -> list[FileEntry]:
+        rows = self._db.execute(
+            "SELECT relpath, size, sha256, kind, status, station, scan_id, outputs, error FROM files ORDER BY relpath"
+        ).fetchall()
+        return [FileEntry(*r[:7], tuple(json.loads(r[7] or "[]")), r[8]) for r in rows]
+
+    def record_file(
+        self,
+        relpath: str,
+        *,
+        size: int,
+        mtime: float | None,
+        sha256: str,
+        kind: str,
+        status: str,
+        station: str | None = None,
+        scan_id: str | None = None,
+        outputs: tuple[str, ...] = (),
+        error: str | None = None,
+        scan: ScanRecord | None = None,
+    ) -> None:
+        """One file's outcome, and its scan when it produced one, in one transaction."""
+        with self.transaction():
+            old = self.file(relpath)
+            if old is not None and old.sha256 and old.sha256 != sha256 and old.scan_id:
+                self._db.execute("INSERT INTO history VALUES (?, ?, ?, ?)", (relpath, old.sha256, old.scan_id, _now()))
+            self._db.execute(
+                "INSERT OR REPLACE INTO files VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (relpath, size, mtime, sha256, kind, status, station, scan_id, json.dumps(list(outputs)), error, _now()),
+            )
+            if scan is not None:
+                self._db.execute(
+                    "INSERT OR REPLACE INTO scans VALUES (?, ?, 'done', ?, ?, ?, ?)",
+                    (scan.scan_id, scan.station, scan.to_json(), relpath, sha256, _now()),
+                )
+
+    def forget_scan(self, scan_id: str) -> None:
+        self._db.execute("DELETE FROM scans WHERE scan_id = ?", (scan_id,))
+
+    def scans(self) -> list[ScanRecord]:
+        rows = self._db.execute("SELECT record FROM scans WHERE status = 'done' ORDER BY scan_id").fetchall()
+        return [ScanRecord.from_json(r[0]) for r in rows]
+
+    def history(self) -> list[tuple[str, str, str, str]]:
+        return self._db.execute("SELECT relpath, sha256, scan_id, replaced FROM history ORDER BY replaced").fetchall()
+
+    def transaction(self) -> "_Transaction":
+        return _Transaction(self._db)
+
+
+class _Transaction:
+    def __init__(self, db: sqlite3.Connection) -> None:
+        self._db = db
+
+    def __enter__(self) -> None:
+        self._db.execute("BEGIN IMMEDIATE")
+
+    def __exit__(self, exc_type, *rest: Any) -> None:
+        self._db.execute("ROLLBACK" if exc_type else "COMMIT")
+
+
+def iter_scan_records(path: str | Path) -> Iterator[ScanRecord]:
+    """Read-only access for tools that only look (catalog rebuild, report)."""
+    db = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
+    try:
+        for (text,) in db.execute("SELECT record FROM scans WHERE status = 'done' ORDER BY scan_id"):
+            yield ScanRecord.from_json(text)
+    finally:
+        db.close()

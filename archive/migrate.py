@@ -1,0 +1,534 @@
+"""Migrate: turn a source archive into a shelf, scan by scan, resumably.
+
+The coordinator (this module) decides the site-wide Hilbert grid and the station grids, runs
+one task per scan (``convert_scan``: read → sort → Parquet, binning and footprint on the way),
+and alone writes the ledger, the cubes' time steps and the catalog. A task only writes its own
+Parquet file (temporary name, then rename), so tasks can run anywhere — in this process or on
+dask workers — and a killed run re-run with the same arguments finishes the same shelf.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import uuid
+from collections import Counter
+from dataclasses import asdict, dataclass, field, replace
+from datetime import datetime
+from pathlib import Path
+from typing import Any, Callable, Iterable
+
+import numpy as np
+import pyarrow.compute as pc
+
+from archive import layout
+from archive.grids import GridAccumulator, GridSpec, EpochGrid, write_epoch
+from archive.layout import ScanId
+from archive.ledger import Ledger
+from archive.points.hilbert import SiteGrid
+from archive.points.write import write_scan
+from archive.recipe import Recipe, load_recipe
+from archive.records import ScanRecord
+from archive.sources import DamagedSource, SourceError, open_points
+from archive.storage import filesystem
+from archive.survey import FileReport, inspect_file, mark_duplicates, walk_source
+from archive.timeutil import adjusted_gps_to_utc
+
+CHUNK_POINTS = 2_000_000
+MEMORY_BUDGET = 768 * 2**20
+ROW_GROUP_POINTS = 262_144
+FOOTPRINT_CELL = 2.0  # metres: coarse occupancy for the catalog outline
+
+
+@dataclass(frozen=True)
+class ScanTask:
+    """Everything one worker needs to convert one scan; plain values so it pickles."""
+
+    source: str
+    storage_options: dict
+    path: str
+    report: FileReport
+    scan_id: str
+    shelf: str
+    site_grid: dict
+    grid_spec: dict
+    recipe: Recipe
+    salvage: bool
+    chunk_points: int = CHUNK_POINTS
+    memory_budget: int = MEMORY_BUDGET
+    row_group_points: int = ROW_GROUP_POINTS
+    previews: bool = True
+
+
+@dataclass
+class ScanOutcome:
+    relpath: str
+    record: ScanRecord | None = None
+    epoch: EpochGrid | None = None
+    error: str | None = None
+    damaged: bool = False
+
+
+@dataclass
+class MigrateResult:
+    """What a migration did, file by file; the CLI prints it and picks the exit code."""
+
+    shelf: str
+    converted: list[str] = field(default_factory=list)  # scan ids converted in this run
+    skipped_done: int = 0  # files already converted by an earlier run
+    failed: list[tuple[str, str]] = field(default_factory=list)  # (relpath, reason)
+    duplicates: list[tuple[str, str]] = field(default_factory=list)  # (relpath, original)
+    partial: list[str] = field(default_factory=list)  # scan ids salvaged from damaged files
+    grids: list[str] = field(default_factory=list)  # legacy grid stores written
+    ignored: list[str] = field(default_factory=list)
+    points: int = 0  # points converted in this run
+    outside_grid: dict[str, int] = field(default_factory=dict)  # scan id -> points outside its station grid
+    scans_total: int = 0
+
+    @property
+    def ok(self) -> bool:
+        return not self.failed and not self.duplicates
+
+    def summary(self) -> str:
+        lines = [
+            f"shelf {self.shelf}: {self.scans_total} scans in all; this run converted {len(self.converted)} scans "
+            f"({self.points:,} points), {self.skipped_done} files were already done",
+        ]
+        if self.partial:
+            lines.append(f"salvaged (partial): {', '.join(self.partial)}")
+        if self.grids:
+            lines.append(f"legacy grids: {', '.join(self.grids)}")
+        outside = {k: v for k, v in self.outside_grid.items() if v}
+        if outside:
+            lines.append(
+                "points outside their station grid (kept in the points archive, not gridded): "
+                + ", ".join(f"{k} {v}" for k, v in outside.items())
+            )
+        if self.duplicates:
+            lines.append("duplicates (converted once from the original):")
+            lines += [f"  {rel}  = {orig}" for rel, orig in self.duplicates]
+        if self.failed:
+            lines.append("not converted:")
+            lines += [f"  {rel}: {why}" for rel, why in self.failed]
+        if self.ignored:
+            lines.append(f"ignored (not point or grid files): {len(self.ignored)}")
+        return "\n".join(lines)
+
+
+def migrate(
+    source: str,
+    shelf: str,
+    recipe: Recipe | str | None = None,
+    crs: str | None = None,
+    *,
+    salvage: bool = False,
+    cell: float | None = None,
+    storage_options: dict | None = None,
+    progress: bool = False,
+    previews: bool = True,
+    catalog: bool = True,
+    chunk_points: int = CHUNK_POINTS,
+    memory_budget: int = MEMORY_BUDGET,
+    row_group_points: int = ROW_GROUP_POINTS,
+    executor: "Executor | None" = None,
+) -> MigrateResult:
+    """Convert every scan and grid of ``source`` into the local shelf folder ``shelf``.
+
+    Re-running skips what the ledger records as done (same checksum) and finishes the rest;
+    a source file whose checksum changed is converted again and replaces its scan.
+    """
+    if not isinstance(recipe, Recipe):
+        recipe = load_recipe(recipe, crs)
+    else:
+        recipe = recipe.with_crs(crs)
+    if cell is not None:
+        recipe = replace(recipe, grid_cell=float(cell))
+    fs, root = filesystem(source, storage_options)
+    if not fs.exists(root):
+        raise FileNotFoundError(f"source {source} does not exist")
+    shelf_path = Path(shelf)
+    shelf_path.mkdir(parents=True, exist_ok=True)
+    _remove_leftovers(shelf_path)
+    result = MigrateResult(shelf=str(shelf_path))
+    executor = executor or SerialExecutor()
+    with Ledger(shelf_path / layout.LEDGER) as ledger:
+        reports = _survey(fs, root, recipe, ledger, executor, progress)
+        _write_survey(shelf_path, source, reports)
+        usable = [r for r in reports if r.kind == "points" and (r.status == "ok" or (salvage and r.status == "damaged"))]
+        site_grid = _site_grid(ledger, usable, recipe)
+        specs = _station_grids(ledger, usable, recipe)
+        tasks, done_ids = [], set()
+        for report in reports:
+            _classify_outcome(report, ledger, result, salvage, usable)
+        for report in usable:
+            scan_id = str(ScanId(report.station, report.scan_time))
+            entry = ledger.file(report.relpath)
+            if entry and entry.sha256 == report.sha256 and entry.status in ("done", "partial"):
+                result.skipped_done += 1
+                done_ids.add(scan_id)
+                continue
+            tasks.append(
+                ScanTask(
+                    source=str(source), storage_options=storage_options or {}, path=_path_of(root, report.relpath),
+                    report=report, scan_id=scan_id, shelf=str(shelf_path), site_grid=site_grid.to_dict(),
+                    grid_spec=specs[report.station].to_dict(), recipe=recipe, salvage=salvage,
+                    chunk_points=chunk_points, memory_budget=memory_budget, row_group_points=row_group_points,
+                    previews=previews,
+                )
+            )
+        bar = _bar(progress, total=sum(t.report.point_count or 0 for t in tasks), unit="pt", desc="migrate")
+        for outcome in executor.run(convert_scan, tasks):
+            _record_outcome(outcome, next(t for t in tasks if t.report.relpath == outcome.relpath), ledger, result)
+            bar.update(outcome.record.point_count if outcome.record else 0)
+        bar.close()
+        _ingest_grids(fs, root, reports, recipe, shelf_path, ledger, result, storage_options)
+        records = ledger.scans()
+        result.scans_total = len(records)
+        if catalog:
+            from archive.catalog import build_catalog
+
+            build_catalog(str(shelf_path), records, settings=recipe.catalog)
+    return result
+
+
+# --- survey and planning --------------------------------------------------------------------
+
+
+def _survey(fs, root: str, recipe: Recipe, ledger: Ledger, executor: "Executor", progress: bool) -> list[FileReport]:
+    """Inspect every file, reusing the ledger's cached inspection of unchanged files."""
+    entries = walk_source(fs, root, recipe)
+    reports: dict[str, FileReport] = {}
+    todo = []
+    for path, relpath, size, mtime in entries:
+        cached = ledger.inspection(relpath, size, mtime)
+        if cached is not None:
+            reports[relpath] = _report_from_json(cached)
+        else:
+            todo.append((path, relpath, size, mtime))
+    bar = _bar(progress, total=sum(e[2] for e in todo), unit="B", desc="survey")
+    for report in executor.run(_inspect_task, [(fs, p, r, s, recipe, m) for p, r, s, m in todo]):
+        reports[report.relpath] = report
+        ledger.save_inspection(report.relpath, report.size, report.mtime, _report_to_json(report))
+        bar.update(report.size)
+    bar.close()
+    ordered = [reports[e[1]] for e in entries]
+    for r in ordered:  # duplicate marks depend on the whole walk, never on the cache
+        if r.status == "duplicate":
+            r.status, r.duplicate_of = "ok", None
+            r.problems = [p for p in r.problems if not p.startswith("byte-identical")]
+    mark_duplicates(ordered)
+    return ordered
+
+
+def _inspect_task(args) -> FileReport:
+    fs, path, relpath, size, recipe, mtime = args
+    return inspect_file(fs, path, relpath, size, recipe, deep=True, mtime=mtime)
+
+
+def _report_to_json(report: FileReport) -> str:
+    d = asdict(report)
+    d["scan_time"] = report.scan_time.isoformat() if report.scan_time else None
+    return json.dumps(d)
+
+
+def _report_from_json(text: str) -> FileReport:
+    d = json.loads(text)
+    d["scan_time"] = datetime.fromisoformat(d["scan_time"]) if d["scan_time"] else None
+    d["bounds"] = tuple(d["bounds"]) if d["bounds"] else None
+    d["columns"] = tuple(d["columns"])
+    return FileReport(**d)
+
+
+def _write_survey(shelf: Path, source: str, reports: list[FileReport]) -> None:
+    from archive.survey import SurveyResult
+
+    SurveyResult(str(source), reports).write(str(shelf / layout.SURVEY))
+
+
+def _site_grid(ledger: Ledger, usable: list[FileReport], recipe: Recipe) -> SiteGrid:
+    """The Hilbert grid is fixed by the first migration so later scans sort on the same curve."""
+    stored = ledger.setting("site_grid")
+    if stored is not None:
+        return SiteGrid.from_dict(stored)
+    boxes = [r.bounds for r in usable if r.bounds]
+    if not boxes:
+        return SiteGrid.from_bounds(0.0, 0.0, 1.0, 1.0)
+    b = np.array(boxes)
+    grid = SiteGrid.from_bounds(b[:, 0].min(), b[:, 1].min(), b[:, 3].max(), b[:, 4].max())
+    ledger.set_setting("site_grid", grid.to_dict())
+    return grid
+
+
+def _station_grids(ledger: Ledger, usable: list[FileReport], recipe: Recipe) -> dict[str, GridSpec]:
+    """One fixed grid per station: the recipe's extent, else all its scans' bounds plus a margin."""
+    specs = {k: GridSpec.from_dict(v) for k, v in (ledger.setting("station_grids") or {}).items()}
+    by_station: dict[str, list[FileReport]] = {}
+    for r in usable:
+        by_station.setdefault(r.station, []).append(r)
+    for station, reports in sorted(by_station.items()):
+        if station in specs:
+            continue
+        crs = Counter(r.crs_wkt for r in reports).most_common(1)[0][0]
+        extent = recipe.grid_extent(station)
+        if extent is None:
+            b = np.array([r.bounds for r in reports if r.bounds])
+            extent = (b[:, 0].min(), b[:, 1].min(), b[:, 3].max(), b[:, 4].max())
+            margin = recipe.grid_margin
+        else:
+            margin = 0.0
+        specs[station] = GridSpec.from_bounds(station, extent, recipe.grid_cell, margin, crs)
+    ledger.set_setting("station_grids", {k: v.to_dict() for k, v in specs.items()})
+    return specs
+
+
+def _classify_outcome(report: FileReport, ledger: Ledger, result: MigrateResult, salvage: bool, usable) -> None:
+    """Record files that will not be converted (duplicates, failures, non-data) in the ledger."""
+    if report.kind == "grid":
+        return
+    common = dict(size=report.size, mtime=report.mtime, sha256=report.sha256, kind=report.kind, station=report.station)
+    if report.status == "ignored":
+        result.ignored.append(report.relpath)
+        ledger.record_file(report.relpath, status="ignored", **common)
+    elif report.status == "duplicate":
+        result.duplicates.append((report.relpath, report.duplicate_of))
+        ledger.record_file(report.relpath, status="duplicate", error=f"duplicate of {report.duplicate_of}", **common)
+    elif report.status == "unusable" or (report.status == "damaged" and not salvage):
+        why = "; ".join(report.problems)
+        if report.status == "damaged":
+            why += "; use --salvage to convert the readable points"
+        result.failed.append((report.relpath, why))
+        ledger.record_file(report.relpath, status="failed", error=why, **common)
+
+
+def _path_of(root: str, relpath: str) -> str:
+    return f"{root.rstrip('/')}/{relpath}"
+
+
+# --- one scan ---------------------------------------------------------------------------------
+
+
+def convert_scan(task: ScanTask) -> ScanOutcome:
+    """Read, sort and write one scan; bin it onto its station grid on the way. Never raises."""
+    report = task.report
+    try:
+        return _convert(task)
+    except (SourceError, ValueError, OSError) as exc:
+        return ScanOutcome(report.relpath, error=str(exc).removeprefix(f"{report.relpath}: "))
+
+
+def _convert(task: ScanTask) -> ScanOutcome:
+    from archive.catalog.footprint import outline
+
+    report, recipe = task.report, task.recipe
+    fs, _ = filesystem(task.source, task.storage_options)
+    with fs.open(task.path, "rb") as fh:
+        head = fh.read(4096)
+    reader = open_points(fs, task.path, report.relpath, report.size, head, recipe)
+    scan = ScanId.parse(task.scan_id)
+    relative = layout.points_path(scan)
+    final = Path(task.shelf) / relative
+    final.parent.mkdir(parents=True, exist_ok=True)
+    temp = final.with_name(f"{final.name}.part-{uuid.uuid4().hex[:8]}")
+    spec = GridSpec.from_dict(task.grid_spec)
+    binner = GridAccumulator(spec)
+    axes = reader.header.axes
+
+    def feed(table) -> None:
+        binner.add(*(_as_float(table, a, axes[a]) for a in "xyz"))
+
+    metadata = {"scanshelf": _file_metadata(task, reader.header)}
+    try:
+        written = write_scan(
+            reader.chunks(task.chunk_points, salvage=task.salvage), str(temp), SiteGrid.from_dict(task.site_grid),
+            metadata=metadata, row_group_size=task.row_group_points, memory_budget=task.memory_budget,
+            spill_dir=str(final.parent), on_sorted=feed,
+        )
+        os.replace(temp, final)
+    finally:
+        if temp.exists():
+            temp.unlink()
+    epoch = binner.finish()
+    tally = reader.tally
+    problems = tuple(dict.fromkeys([*report.problems, *tally.problems]))
+    start = report.scan_time
+    end = start
+    first = None
+    if tally.min_time is not None and tally.max_time is not None:
+        if reader.header.adjusted_gps_time:
+            first, end = adjusted_gps_to_utc(tally.min_time), adjusted_gps_to_utc(tally.max_time)
+        else:
+            end = start + (adjusted_gps_to_utc(tally.max_time) - adjusted_gps_to_utc(tally.min_time))
+    preview = None
+    if task.previews and epoch.inside:
+        preview = _write_preview(task, spec, epoch, scan)
+    record = ScanRecord(
+        scan_id=task.scan_id, station=scan.station, start=start, end=end, first_point_time=first,
+        crs_wkt=report.crs_wkt, crs_code=report.crs_name if report.crs_name and ":" in report.crs_name else None,
+        bbox=written.bbox, point_count=written.rows, points_href=relative, points_size=written.size,
+        points_sha256=written.sha256, row_groups=written.row_groups,
+        columns=written.columns,
+        source_path=report.relpath, source_sha256=report.sha256, source_format=reader.header.format,
+        partial=bool(tally.problems) or report.status == "damaged", problems=problems,
+        scanner_origin=recipe.station_origin(scan.station),
+        footprint=outline(_coarse(epoch.point_count > 0, spec), _coarse_transform(spec), spec.crs_wkt) if epoch.inside else None,
+        preview_href=preview, grid_href=layout.grid_path(scan.station),
+        extra={"outside_grid": epoch.outside, "point_format": reader.header.point_format, "version": reader.header.version},
+    )
+    return ScanOutcome(report.relpath, record=record, epoch=epoch, damaged=record.partial)
+
+
+def _as_float(table, axis: str, encoding) -> np.ndarray:
+    from archive.points.coords import units_of
+
+    return encoding.to_float(units_of(table.column(axis)))
+
+
+def _file_metadata(task: ScanTask, header) -> str:
+    from pyproj import CRS
+
+    report = task.report
+    return json.dumps({
+        "scan_id": task.scan_id,
+        "station": report.station,
+        "crs": CRS.from_wkt(report.crs_wkt).to_json_dict(),
+        "axes": {a: enc.to_dict() for a, enc in header.axes.items()},
+        "gps_time": "adjusted standard GPS time (GPS seconds - 1e9)" if header.adjusted_gps_time else "GPS week seconds",
+        "source": {
+            "path": report.relpath, "sha256": report.sha256, "format": header.format,
+            "version": header.version, "point_format": header.point_format,
+        },
+        "partial": task.salvage and report.status == "damaged",
+    })
+
+
+def _coarse(mask: np.ndarray, spec: GridSpec) -> np.ndarray:
+    """Occupancy at FOOTPRINT_CELL (or the grid cell if coarser), so outlines stay small."""
+    f = max(1, int(round(FOOTPRINT_CELL / spec.cell)))
+    ny, nx = (mask.shape[0] + f - 1) // f * f, (mask.shape[1] + f - 1) // f * f
+    padded = np.zeros((ny, nx), bool)
+    padded[: mask.shape[0], : mask.shape[1]] = mask
+    return padded.reshape(ny // f, f, nx // f, f).any(axis=(1, 3))
+
+
+def _coarse_transform(spec: GridSpec):
+    f = max(1, int(round(FOOTPRINT_CELL / spec.cell)))
+    t = spec.transform
+    return type(t)(t.a * f, t.b, t.c, t.d, t.e * f, t.f)
+
+
+def _write_preview(task: ScanTask, spec: GridSpec, epoch: EpochGrid, scan: ScanId) -> str | None:
+    from archive.report.previews import render_preview
+
+    relative = layout.preview_path(scan)
+    final = Path(task.shelf) / relative
+    final.parent.mkdir(parents=True, exist_ok=True)
+    temp = final.with_name(f"{final.stem}.part-{uuid.uuid4().hex[:8]}.png")
+    try:
+        render_preview(epoch, str(temp), spec=spec, title=task.scan_id)
+        os.replace(temp, final)
+    finally:
+        if temp.exists():
+            temp.unlink()
+    return relative
+
+
+def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result: MigrateResult) -> None:
+    report = task.report
+    common = dict(size=report.size, mtime=report.mtime, sha256=report.sha256, kind="points", station=report.station)
+    if outcome.error is not None:
+        result.failed.append((report.relpath, outcome.error))
+        ledger.record_file(report.relpath, status="failed", error=outcome.error, scan_id=task.scan_id, **common)
+        return
+    record = outcome.record
+    previous = ledger.file(report.relpath)
+    if previous and previous.scan_id and previous.scan_id != record.scan_id:
+        _retire_scan(Path(task.shelf), ledger, previous.scan_id)
+    write_epoch(str(Path(task.shelf) / layout.grid_path(record.station)), GridSpec.from_dict(task.grid_spec),
+                record.start, record.scan_id, outcome.epoch)
+    outputs = (record.points_href, layout.grid_path(record.station)) + ((record.preview_href,) if record.preview_href else ())
+    ledger.record_file(
+        report.relpath, status="partial" if record.partial else "done", scan_id=record.scan_id,
+        outputs=outputs, scan=record, **common,
+    )
+    result.converted.append(record.scan_id)
+    result.points += record.point_count
+    result.outside_grid[record.scan_id] = outcome.epoch.outside
+    if record.partial:
+        result.partial.append(record.scan_id)
+
+
+def _retire_scan(shelf: Path, ledger: Ledger, scan_id: str) -> None:
+    """A changed source file produced a scan under a new id: the old scan's files go."""
+    scan = ScanId.parse(scan_id)
+    for rel in (layout.points_path(scan), layout.preview_path(scan)):
+        (shelf / rel).unlink(missing_ok=True)
+    ledger.forget_scan(scan_id)
+
+
+def _ingest_grids(fs, root, reports, recipe, shelf: Path, ledger: Ledger, result: MigrateResult, storage_options) -> None:
+    from archive.grids import ingest_grid
+
+    for report in reports:
+        if report.kind != "grid":
+            continue
+        common = dict(size=report.size, mtime=report.mtime, sha256=report.sha256, kind="grid", station=report.station)
+        entry = ledger.file(report.relpath)
+        if entry and entry.sha256 == report.sha256 and entry.status == "done":
+            result.skipped_done += 1
+            continue
+        if report.status == "duplicate":
+            continue
+        if report.status != "ok":
+            why = "; ".join(report.problems)
+            result.failed.append((report.relpath, why))
+            ledger.record_file(report.relpath, status="failed", error=why, **common)
+            continue
+        rule = recipe.grid_rule(report.relpath)
+        try:
+            ingested = ingest_grid(
+                _path_of(root, report.relpath), str(shelf), report.station,
+                product=(rule.product if rule else None) or report.product,
+                crs=(rule.crs if rule else None) or recipe.crs, storage_options=storage_options,
+            )
+        except (SourceError, ValueError, OSError) as exc:
+            why = str(exc)
+            result.failed.append((report.relpath, why))
+            ledger.record_file(report.relpath, status="failed", error=why, **common)
+            continue
+        dest = getattr(ingested, "href", None) or getattr(ingested, "dest", None)
+        result.grids.append(str(dest))
+        ledger.record_file(report.relpath, status="done", outputs=(str(dest),), **common)
+
+
+def _remove_leftovers(shelf: Path) -> None:
+    """Temporary files and spill folders of a killed run are never part of the shelf."""
+    import shutil
+
+    for pattern in ("points/**/*.part-*", "previews/*.part-*", "points/**/.scanshelf-spill-*"):
+        for p in shelf.glob(pattern):
+            if p.is_dir():
+                shutil.rmtree(p, ignore_errors=True)
+            else:
+                p.unlink(missing_ok=True)
+
+
+def _bar(enabled: bool, **kwargs):
+    from tqdm.auto import tqdm
+
+    return tqdm(disable=not enabled, unit_scale=True, leave=False, **kwargs)
+
+
+# --- execution ----------------------------------------------------------------------------------
+
+
+class Executor:
+    """Runs a function over tasks and yields results as they finish."""
+
+    def run(self, fn: Callable, tasks: Iterable) -> Iterable:  # pragma: no cover - protocol
+        raise NotImplementedError
+
+
+class SerialExecutor(Executor):
+    def run(self, fn: Callable, tasks: Iterable) -> Iterable:
+        for task in tasks:
+            yield fn(task)

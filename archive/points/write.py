@@ -1,0 +1,229 @@
+"""Write one scan's points as a Hilbert-sorted Parquet file, with checksum and statistics.
+
+Encodings were chosen by measurement (benchmarks/points.py): x, y, z as DECIMAL stored as INT64
+with DELTA_BINARY_PACKED (scan-order deltas are a few millimetres), floats with BYTE_STREAM_SPLIT,
+zstd, no dictionaries (on high-cardinality columns they cost speed; on small enums zstd alone
+does as well). The checksum and the statistics are computed from the bytes and values as they
+are written, so the file is never read back.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import math
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
+
+import fsspec
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..records import ColumnInfo
+from .coords import units_of
+from .hilbert import SiteGrid
+from .sort import COORDS, sorted_row_groups
+
+META_KEY = b"scanshelf"
+
+
+@dataclass(frozen=True)
+class Encoding:
+    """Parquet encoding choices; the defaults are the measured best (see benchmarks/points.py)."""
+
+    compression: str = "zstd"
+    compression_level: int = 1
+    coordinates: str = "DELTA_BINARY_PACKED"  # x, y, z (INT64 decimals)
+    floats: str = "BYTE_STREAM_SPLIT"
+    integers: str | None = None  # other integer columns; None = PLAIN
+    dictionary_enums: bool = False  # dictionary-encode 8-bit and boolean columns
+
+    def writer_options(self, schema: pa.Schema) -> dict:
+        encodings: dict[str, str] = {}
+        dictionary: list[str] = []
+        for f in schema:
+            t = f.type
+            if f.name in COORDS:
+                encodings[f.name] = self.coordinates
+            elif self.dictionary_enums and (pa.types.is_boolean(t) or (pa.types.is_integer(t) and t.bit_width == 8)):
+                dictionary.append(f.name)
+            elif pa.types.is_floating(t) and self.floats != "PLAIN":
+                encodings[f.name] = self.floats
+            elif pa.types.is_integer(t) and self.integers:
+                encodings[f.name] = self.integers
+        return {
+            "compression": self.compression,
+            "compression_level": self.compression_level,
+            "use_dictionary": dictionary or False,
+            "column_encoding": encodings or None,
+            "store_decimal_as_integer": True,
+            "write_statistics": True,
+        }
+
+
+@dataclass(frozen=True)
+class WrittenScan:
+    """What was written: enough for the catalog and the ledger without reopening the file."""
+
+    rows: int
+    row_groups: int
+    size: int  # bytes
+    sha256: str  # hex digest of the file's bytes
+    columns: tuple[ColumnInfo, ...]  # per-column statistics; x, y, z in real units
+    bbox: tuple[float, float, float, float, float, float]  # xmin, ymin, zmin, xmax, ymax, zmax
+
+    @property
+    def statistics(self) -> dict[str, ColumnInfo]:
+        return {c.name: c for c in self.columns}
+
+
+def write_scan(
+    chunks: Iterable[pa.Table],
+    dest: str,
+    grid: SiteGrid,
+    *,
+    metadata: dict,
+    row_group_size: int = 262_144,
+    memory_budget: int = 512 * 2**20,
+    spill_dir: str | None = None,
+    on_sorted: Callable[[pa.Table], None] | None = None,
+    encoding: Encoding = Encoding(),
+    scan_order: bool = True,
+    storage_options: dict | None = None,
+) -> WrittenScan:
+    """Sort `chunks` (pyarrow Tables with decimal x, y, z) into Hilbert row groups and write `dest`.
+
+    `dest` is written exactly as named (the caller picks temporary names and renames).
+    `metadata` becomes the file's key-value metadata; the JSON under b"scanshelf" (str, bytes or
+    dict) gains "site_grid", "row_group_size" and "row_order". `on_sorted` sees each row group
+    as it is written, so other products (grids, footprints) need no second read.
+    """
+    groups = sorted_row_groups(
+        chunks, grid, row_group_size=row_group_size, memory_budget=memory_budget,
+        spill_dir=spill_dir, scan_order=scan_order,
+    )
+    stats: dict[str, _Moments] = {}
+    rows = count = 0
+    writer: pq.ParquetWriter | None = None
+    try:
+        with fsspec.open(dest, "wb", **(storage_options or {})) as raw:
+            sink = _HashingSink(raw)
+            for table in groups:
+                if writer is None:
+                    schema = table.schema.with_metadata(_metadata(metadata, grid, row_group_size, scan_order))
+                    writer = pq.ParquetWriter(sink, schema, **encoding.writer_options(schema))
+                    stats = {f.name: _Moments() for f in schema if _has_moments(f)}
+                writer.write_table(table.replace_schema_metadata(writer.schema.metadata), row_group_size=len(table))
+                for name, m in stats.items():
+                    m.add(_values(table.column(name)))
+                rows += len(table)
+                count += 1
+                if on_sorted is not None:
+                    on_sorted(table)
+            if writer is None:
+                raise ValueError(f"no points to write to {dest}: the scan is empty")
+            writer.close()
+            writer = None
+    finally:
+        groups.close()
+        if writer is not None:
+            writer.close()
+    columns = tuple(_column_info(f, stats.get(f.name)) for f in schema)
+    info = {c.name: c for c in columns}
+    bbox = tuple(info[a].minimum for a in COORDS) + tuple(info[a].maximum for a in COORDS)
+    return WrittenScan(rows, count, sink.size, sink.sha256.hexdigest(), columns, bbox)  # type: ignore[arg-type]
+
+
+def _metadata(metadata: dict, grid: SiteGrid, row_group_size: int, scan_order: bool) -> dict[bytes, bytes]:
+    out = {_bytes(k): _bytes(v) for k, v in metadata.items() if _bytes(k) != META_KEY}
+    given = metadata.get(META_KEY.decode(), metadata.get(META_KEY, {}))
+    doc = json.loads(given) if isinstance(given, (str, bytes)) else dict(given)
+    doc.update(
+        site_grid=grid.to_dict(),
+        row_group_size=row_group_size,
+        row_order="hilbert row groups, scan order inside" if scan_order else "hilbert",
+    )
+    out[META_KEY] = json.dumps(doc).encode()
+    return out
+
+
+def _bytes(v: object) -> bytes:
+    if isinstance(v, bytes):
+        return v
+    return (v if isinstance(v, str) else json.dumps(v)).encode()
+
+
+class _HashingSink(io.RawIOBase):
+    """Forwards writes to a file and hashes and counts them on the way."""
+
+    def __init__(self, raw):
+        self.raw = raw
+        self.sha256 = hashlib.sha256()
+        self.size = 0
+
+    def writable(self) -> bool:
+        return True
+
+    def write(self, b) -> int:
+        self.sha256.update(b)
+        n = self.raw.write(b)
+        self.size += len(memoryview(b).cast("B"))
+        return n if n is not None else len(b)
+
+    def tell(self) -> int:
+        return self.size
+
+    def flush(self) -> None:
+        self.raw.flush()
+
+    def close(self) -> None:  # the owner of `raw` closes it
+        super().close()
+
+
+class _Moments:
+    """Count, min, max, mean and M2 merged across row groups (Chan et al. pairwise update)."""
+
+    def __init__(self) -> None:
+        self.n, self.min, self.max, self.mean, self.m2 = 0, math.inf, -math.inf, 0.0, 0.0
+
+    def add(self, v: np.ndarray) -> None:
+        if not v.size:
+            return
+        n = v.size
+        mean = float(v.mean(dtype=np.float64))
+        m2 = float(np.square(v - mean, dtype=np.float64).sum())
+        delta = mean - self.mean
+        total = self.n + n
+        self.mean += delta * n / total
+        self.m2 += m2 + delta * delta * self.n * n / total
+        self.n = total
+        self.min = min(self.min, float(v.min()))
+        self.max = max(self.max, float(v.max()))
+
+
+def _has_moments(field: pa.Field) -> bool:
+    t = field.type
+    return field.name in COORDS or pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t)
+
+
+def _values(column: pa.ChunkedArray) -> np.ndarray:
+    if pa.types.is_decimal(column.type):
+        return units_of(column)
+    column = column.drop_null() if column.null_count else column
+    return column.to_numpy()
+
+
+def _column_info(field: pa.Field, m: _Moments | None) -> ColumnInfo:
+    t = field.type
+    size = 8 if field.name in COORDS else max(1, getattr(t, "bit_width", 8) // 8)
+    if m is None or m.n == 0:
+        return ColumnInfo(field.name, str(t), size)
+    unit = 10.0 ** -t.scale if pa.types.is_decimal(t) else 1.0
+    # decimals: min/max are exact decimals; scaling the integer by a power of ten rounds once
+    scaled = (lambda v: v / 10.0**t.scale) if pa.types.is_decimal(t) else (lambda v: v)
+    return ColumnInfo(
+        field.name, str(t), size,
+        minimum=scaled(m.min), maximum=scaled(m.max), mean=m.mean * unit, stddev=math.sqrt(m.m2 / m.n) * unit,
+    )

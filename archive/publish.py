@@ -1,0 +1,290 @@
+"""Copy a shelf to object storage or a web root: verified, resumable, catalog root last.
+
+Order is what keeps readers safe: data objects first, then Zarr metadata, then the STAC layer
+and the items index, then ``manifest.parquet``, and ``catalog.json`` last, so a reader who
+finds the root finds everything it points to. Files already at the destination with the same
+size and SHA-256 (from the previous manifest, or by hashing the remote copy) are skipped, so an
+interrupted publish resumes where it stopped. The ledger never leaves the machine.
+Storage options may hold credentials: they are passed to fsspec only, never written or logged.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import logging
+import posixpath
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from typing import Any, Callable, Iterable
+
+import fsspec
+import pyarrow as pa
+import pyarrow.parquet as pq
+from fsspec.implementations.local import LocalFileSystem
+
+from archive import layout
+from archive.query.shelf import redact
+
+log = logging.getLogger(__name__)
+
+CHUNK = 1 << 20
+LOCAL_ONLY = (layout.LEDGER,)  # and its SQLite side files: the ledger stays local
+PHASES = ("data", "zarr metadata", "catalog", "manifest", "root")
+
+
+class PublishError(RuntimeError):
+    """A publish step failed; the message names the file and never holds credentials."""
+
+
+@dataclass(frozen=True)
+class FileEntry:
+    path: str  # shelf-relative, forward slashes
+    size: int
+    sha256: str
+    action: str  # "upload" or "skip"
+
+
+@dataclass
+class PublishReport:
+    dest: str  # redacted
+    dry_run: bool
+    files: list[FileEntry] = field(default_factory=list)
+
+    @property
+    def uploaded(self) -> list[str]:
+        return [f.path for f in self.files if f.action == "upload"]
+
+    @property
+    def skipped(self) -> list[str]:
+        return [f.path for f in self.files if f.action == "skip"]
+
+    @property
+    def bytes_uploaded(self) -> int:
+        return sum(f.size for f in self.files if f.action == "upload")
+
+    def __str__(self) -> str:
+        verb = "would upload" if self.dry_run else "uploaded"
+        return (
+            f"{self.dest}: {verb} {len(self.uploaded)} file(s), {self.bytes_uploaded:,} bytes; "
+            f"{len(self.skipped)} unchanged"
+        )
+
+
+def phase_of(path: str) -> int:
+    """Which publish phase a shelf file belongs to (see module docstring)."""
+    name = posixpath.basename(path)
+    if path == layout.CATALOG:
+        return 4
+    if path == layout.MANIFEST:
+        return 3
+    if ".zarr/" in path:
+        return 1 if name == "zarr.json" else 0
+    if path.startswith("scans/") or name == "collection.json" or path.endswith(".json"):
+        return 2
+    return 0
+
+
+def _is_local_only(path: str) -> bool:
+    name = posixpath.basename(path)
+    return (
+        any(path == p or path.startswith(p + "-") for p in LOCAL_ONLY)
+        or path == layout.MANIFEST
+        or any(part.startswith(".") for part in path.split("/"))  # temp names of atomic writes
+    )
+
+
+def _sha256(fs: fsspec.AbstractFileSystem, path: str) -> str:
+    h = hashlib.sha256()
+    with fs.open(path, "rb", block_size=CHUNK) as f:
+        while chunk := f.read(CHUNK):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _scrub(text: str, options: dict) -> str:
+    for value in _strings(options):
+        if len(value) >= 4:
+            text = text.replace(value, "***")
+    return text
+
+
+def _strings(obj: Any) -> Iterable[str]:
+    if isinstance(obj, str):
+        yield obj
+    elif isinstance(obj, dict):
+        for v in obj.values():
+            yield from _strings(v)
+    elif isinstance(obj, (list, tuple)):
+        for v in obj:
+            yield from _strings(v)
+
+
+def _remote_manifest(fs, root: str) -> dict[str, tuple[int, str]]:
+    try:
+        table = pq.read_table(io.BytesIO(fs.cat_file(f"{root}/{layout.MANIFEST}")))
+    except Exception:  # absent or unreadable: fall back to hashing remote copies
+        return {}
+    return {p: (s, h) for p, s, h in zip(*(table[c].to_pylist() for c in ("path", "size", "sha256")))}
+
+
+def _remote_sizes(fs, root: str) -> dict[str, int]:
+    try:
+        found = fs.find(root, detail=True)
+    except FileNotFoundError:
+        return {}
+    prefix = fs._strip_protocol(root).rstrip("/") + "/"
+    out = {}
+    for name, info in found.items():
+        name = fs._strip_protocol(name)
+        if name.startswith(prefix) and info.get("type", "file") == "file":
+            out[name[len(prefix):]] = int(info.get("size") or 0)
+    return out
+
+
+def manifest_table(entries: list[FileEntry]) -> pa.Table:
+    """Every published file: path, size in bytes, SHA-256 hex digest."""
+    return pa.table(
+        {
+            "path": pa.array([e.path for e in entries], pa.string()),
+            "size": pa.array([e.size for e in entries], pa.int64()),
+            "sha256": pa.array([e.sha256 for e in entries], pa.string()),
+        }
+    )
+
+
+def publish(
+    shelf: str,
+    dest: str,
+    storage_options: dict | None = None,
+    *,
+    source_options: dict | None = None,
+    dry_run: bool = False,
+    workers: int = 8,
+    verify: bool = True,
+    progress: Callable[[int], Any] | None = None,
+) -> PublishReport:
+    """Copy ``shelf`` to ``dest`` (any fsspec URL) and return what was (or would be) uploaded.
+
+    ``progress`` is called with a byte count as files finish (the CLI feeds a tqdm bar).
+    Raises PublishError when a written file does not read back with its size and checksum;
+    the root catalog is then not written, so readers never see the broken copy.
+    """
+    options = dict(storage_options or {})
+    shown = redact(dest)
+    try:
+        src_fs, src_root = fsspec.url_to_fs(shelf, **(source_options or {}))
+        dst_fs, dst_root = fsspec.url_to_fs(dest, **options)
+    except Exception as e:
+        raise PublishError(f"{shown}: cannot open the destination: {_scrub(str(e), options)}") from None
+    src_root, dst_root = src_root.rstrip("/"), dst_root.rstrip("/")
+    if type(src_fs) is type(dst_fs) and src_root == dst_root:
+        raise PublishError(f"{shown}: the destination is the shelf itself; give another folder or bucket")
+    if not src_fs.exists(f"{src_root}/{layout.CATALOG}"):
+        raise PublishError(f"{shelf}: no {layout.CATALOG}; is this a shelf? run the migration first")
+
+    prefix = src_fs._strip_protocol(src_root).rstrip("/") + "/"
+    local = {
+        name[len(prefix):]: int(info["size"])
+        for name, info in src_fs.find(src_root, detail=True).items()
+        if name.startswith(prefix) and info.get("type", "file") == "file"
+    }
+    paths = sorted(p for p in local if not _is_local_only(p))
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        digests = dict(zip(paths, pool.map(lambda p: _sha256(src_fs, f"{prefix}{p}"), paths)))
+
+    try:
+        remote_sizes = _remote_sizes(dst_fs, dst_root)
+        manifest = _remote_manifest(dst_fs, dst_root) if remote_sizes else {}
+    except Exception as e:
+        raise PublishError(f"{shown}: cannot list the destination: {_scrub(str(e), options)}") from None
+
+    def unchanged(path: str) -> bool:
+        if remote_sizes.get(path) != local[path]:
+            return False
+        if manifest.get(path) == (local[path], digests[path]):
+            return True
+        return _sha256(dst_fs, f"{dst_root}/{path}") == digests[path]
+
+    with ThreadPoolExecutor(max_workers=workers) as pool:
+        same = dict(zip(paths, pool.map(unchanged, paths)))
+    entries = [FileEntry(p, local[p], digests[p], "skip" if same[p] else "upload") for p in paths]
+    report = PublishReport(shown, dry_run, entries)
+    manifest_bytes = _manifest_bytes(entries)
+    manifest_sha = hashlib.sha256(manifest_bytes).hexdigest()
+    if dry_run:
+        return report
+
+    local_dst = isinstance(dst_fs, LocalFileSystem)
+
+    def put(path: str) -> None:
+        target = f"{dst_root}/{path}"
+        src = f"{prefix}{path}"
+        try:
+            dst_fs.makedirs(posixpath.dirname(target), exist_ok=True)
+            tmp = f"{posixpath.dirname(target)}/.{posixpath.basename(target)}.publishing" if local_dst else target
+            if isinstance(src_fs, LocalFileSystem):
+                dst_fs.put_file(src, tmp)
+            else:
+                with src_fs.open(src, "rb") as r, dst_fs.open(tmp, "wb") as w:
+                    while chunk := r.read(CHUNK):
+                        w.write(chunk)
+            if tmp != target:
+                dst_fs.mv(tmp, target)
+        except Exception as e:
+            raise PublishError(f"{shown}/{path}: upload failed: {type(e).__name__}: {_scrub(str(e), options)}") from None
+        if progress is not None:
+            progress(local[path])
+
+    def check(entry: FileEntry) -> str | None:
+        target = f"{dst_root}/{entry.path}"
+        try:
+            size = int(dst_fs.info(target)["size"])
+            if size != entry.size:
+                return f"{entry.path}: {size} bytes at the destination, {entry.size} in the shelf"
+            if verify and _sha256(dst_fs, target) != entry.sha256:
+                return f"{entry.path}: checksum differs from the shelf's"
+        except Exception as e:
+            return f"{entry.path}: cannot read back: {type(e).__name__}: {_scrub(str(e), options)}"
+        return None
+
+    for phase in range(len(PHASES)):
+        todo = [e for e in entries if e.action == "upload" and phase_of(e.path) == phase]
+        if phase == 3:  # the manifest of this publish, just before the root
+            _write_manifest(dst_fs, dst_root, manifest_bytes, local_dst, shown, options)
+            continue
+        if not todo:
+            continue
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            list(pool.map(put, [e.path for e in todo]))
+            if hasattr(dst_fs, "invalidate_cache"):
+                dst_fs.invalidate_cache()
+            problems = [p for p in pool.map(check, todo) if p]
+        if problems:
+            raise PublishError(
+                f"{shown}: {len(problems)} file(s) did not verify; the root catalog was not "
+                "written. Run publish again to retry:\n  " + "\n  ".join(problems)
+            )
+        log.info("%s: %s phase: %d file(s) uploaded and verified", shown, PHASES[phase], len(todo))
+    log.info("%s: published (manifest sha256 %s)", shown, manifest_sha[:12])
+    return report
+
+
+def _manifest_bytes(entries: list[FileEntry]) -> bytes:
+    buf = io.BytesIO()
+    pq.write_table(manifest_table(entries), buf, compression="zstd")
+    return buf.getvalue()
+
+
+def _write_manifest(fs, root: str, data: bytes, local_dst: bool, shown: str, options: dict) -> None:
+    target = f"{root}/{layout.MANIFEST}"
+    try:
+        fs.makedirs(root, exist_ok=True)
+        if local_dst:
+            tmp = f"{root}/.{layout.MANIFEST}.publishing"
+            fs.pipe_file(tmp, data)
+            fs.mv(tmp, target)
+        else:
+            fs.pipe_file(target, data)
+    except Exception as e:
+        raise PublishError(f"{shown}/{layout.MANIFEST}: write failed: {_scrub(str(e), options)}") from None

@@ -1,0 +1,87 @@
+"""The one reader protocol every point source implements.
+
+Callers (survey, migrate) never branch on format: they ask a reader for its header facts and
+then for chunks of points as Arrow tables whose x, y, z are exact decimals.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Iterator, Protocol
+
+import pyarrow as pa
+
+from archive.points.coords import AxisEncoding
+
+
+class SourceError(Exception):
+    """A source file that cannot be read as it is; the message names the file and the fix."""
+
+
+class DamagedSource(SourceError):
+    """Readable in part: the points before the damage can be kept with ``--salvage``."""
+
+
+@dataclass
+class SourceHeader:
+    """What a file says about itself before its points are read."""
+
+    format: str  # "las", "laz", "ascii"
+    version: str = ""  # "1.2", "1.4", "csv"
+    point_format: int | None = None
+    declared_count: int | None = None  # None when the format does not declare one
+    crs_wkt: str | None = None
+    bounds: tuple[float, float, float, float, float, float] | None = None
+    axes: dict[str, AxisEncoding] = field(default_factory=dict)
+    adjusted_gps_time: bool = False  # LAS global encoding bit 0: times are absolute
+    columns: tuple[str, ...] = ()
+    problems: list[str] = field(default_factory=list)  # found from the header alone
+
+
+@dataclass
+class ReadTally:
+    """Counts a reader keeps while streaming, so damage is reported with numbers."""
+
+    points: int = 0
+    bad_rows: int = 0
+    min_time: float | None = None
+    max_time: float | None = None
+    problems: list[str] = field(default_factory=list)
+
+    def note_times(self, times: pa.Array | None) -> None:
+        if times is None or len(times) == 0:
+            return
+        import pyarrow.compute as pc
+
+        lo, hi = pc.min_max(times).values()
+        lo, hi = lo.as_py(), hi.as_py()
+        if lo is None:
+            return
+        self.min_time = lo if self.min_time is None else min(self.min_time, lo)
+        self.max_time = hi if self.max_time is None else max(self.max_time, hi)
+
+
+class PointReader(Protocol):
+    """A point source: header facts first, then bounded chunks."""
+
+    relpath: str
+    header: SourceHeader
+    tally: ReadTally
+
+    def chunks(self, chunk_size: int = 2_000_000, salvage: bool = False) -> Iterator[pa.Table]:
+        """Yield tables with x, y, z (decimal) and the other attributes with their own types.
+
+        Damage raises ``DamagedSource`` unless ``salvage``; then readable points are yielded and
+        the damage is written to ``tally.problems``.
+        """
+        ...
+
+
+def scan_time_of(header: SourceHeader, tally: ReadTally) -> datetime | None:
+    """Earliest point time as UTC when the file declares absolute (adjusted standard) GPS time."""
+    from archive.timeutil import adjusted_gps_to_utc
+
+    if header.adjusted_gps_time and tally.min_time is not None:
+        return adjusted_gps_to_utc(tally.min_time)
+    return None

@@ -1,0 +1,136 @@
+"""LAS and LAZ through laspy (lazrs for LAZ), read in chunks with damage detected up front."""
+
+from __future__ import annotations
+
+from typing import Iterator
+
+import numpy as np
+import pyarrow as pa
+
+from archive.points.coords import AxisEncoding
+from archive.sources.base import DamagedSource, ReadTally, SourceError, SourceHeader
+
+LAS_SIGNATURE = b"LASF"
+
+
+def _laspy():
+    try:
+        import laspy
+    except ImportError:  # pragma: no cover - laspy is a core dependency
+        raise SourceError("reading LAS needs laspy: pip install 'laspy[lazrs]'") from None
+    return laspy
+
+
+class LasReader:
+    """One LAS/LAZ file. ``opener`` returns a fresh binary file object (local or fsspec)."""
+
+    def __init__(self, opener, relpath: str, size: int, renames=None) -> None:
+        self._opener = opener
+        self.relpath = relpath
+        self.size = size
+        self._renames = renames or (lambda name: name)
+        self.tally = ReadTally()
+        self.header = self._read_header()
+
+    def _read_header(self) -> SourceHeader:
+        laspy = _laspy()
+        try:
+            with self._opener() as fh, laspy.open(fh) as reader:
+                h = reader.header
+                try:
+                    crs = h.parse_crs()
+                except Exception as exc:  # a broken CRS VLR is a problem of this file, not the run
+                    crs = None
+                    problems = [f"CRS record could not be parsed ({exc}); give --crs"]
+                else:
+                    problems = []
+                header = SourceHeader(
+                    format="laz" if reader.header.are_points_compressed else "las",
+                    version=str(h.version),
+                    point_format=int(h.point_format.id),
+                    declared_count=int(h.point_count),
+                    crs_wkt=crs.to_wkt() if crs is not None else None,
+                    bounds=(*map(float, h.mins), *map(float, h.maxs)),
+                    axes={a: AxisEncoding.for_las(h.scales[i], h.offsets[i]) for i, a in enumerate("xyz")},
+                    adjusted_gps_time=bool(int(h.global_encoding.gps_time_type) == 1),
+                    columns=tuple(self._renames(n) for n in h.point_format.dimension_names if n not in ("X", "Y", "Z")),
+                    problems=problems,
+                )
+                self._offset = int(h.offset_to_point_data)
+                self._record = int(h.point_format.size)
+                self._evlr_start = int(getattr(h, "start_of_first_evlr", 0) or 0)
+                legacy = getattr(h, "legacy_point_count", None)
+        except SourceError:
+            raise
+        except Exception as exc:
+            raise SourceError(f"{self.relpath}: not a readable LAS/LAZ header ({exc}); the file may be damaged or not LAS") from None
+        if header.format == "las":
+            end = self._evlr_start if self._evlr_start > self._offset else self.size
+            stored = max(0, end - self._offset) // self._record
+            if stored != header.declared_count:
+                header.problems.append(
+                    f"header declares {header.declared_count} points but the file holds {stored} "
+                    f"({'truncated' if stored < header.declared_count else 'extra data after the points'})"
+                )
+            self._stored = min(stored, header.declared_count) if stored < header.declared_count else stored
+        else:
+            self._stored = header.declared_count
+        if legacy and header.declared_count and legacy != header.declared_count and header.declared_count < 2**32:
+            header.problems.append(f"legacy point count {legacy} disagrees with point count {header.declared_count}")
+        if header.declared_count == 0:
+            header.problems.append("file declares zero points")
+        return header
+
+    def chunks(self, chunk_size: int = 2_000_000, salvage: bool = False) -> Iterator[pa.Table]:
+        laspy = _laspy()
+        header = self.header
+        if header.problems and not salvage:
+            raise DamagedSource(f"{self.relpath}: {'; '.join(header.problems)}; use --salvage to keep the readable points")
+        self.tally.problems.extend(header.problems)
+        want = self._stored if header.format == "las" else header.declared_count
+        with self._opener() as fh, laspy.open(fh) as reader:
+            done = 0
+            while done < want:
+                n = min(chunk_size, want - done)
+                try:
+                    record = reader.read_points(n)
+                except Exception as exc:
+                    message = f"points unreadable after {done} of {want} ({type(exc).__name__}: {exc})"
+                    if not salvage:
+                        raise DamagedSource(f"{self.relpath}: {message}; use --salvage to keep the points before it") from None
+                    self.tally.problems.append(message)
+                    break
+                if len(record) == 0:
+                    message = f"file ends after {done} of {want} declared points"
+                    if not salvage:
+                        raise DamagedSource(f"{self.relpath}: {message}; use --salvage to keep them") from None
+                    self.tally.problems.append(message)
+                    break
+                done += len(record)
+                table = self._to_table(record)
+                self.tally.points += len(record)
+                self.tally.note_times(table.column("gps_time") if "gps_time" in table.column_names else None)
+                yield table
+
+    def _to_table(self, record) -> pa.Table:
+        names = record.point_format.dimension_names
+        columns: dict[str, pa.Array] = {}
+        for axis, raw in zip("xyz", ("X", "Y", "Z")):
+            enc = self.header.axes[axis]
+            columns[axis] = enc.from_las(np.asarray(record[raw]))
+        for name in names:
+            if name in ("X", "Y", "Z"):
+                continue
+            values = np.asarray(record[name])
+            if values.ndim > 1:  # array-valued extra bytes: one column per element
+                for i in range(values.shape[1]):
+                    columns[f"{self._renames(name)}_{i}"] = pa.array(np.ascontiguousarray(values[:, i]))
+                continue
+            if values.dtype == np.bool_:
+                values = values.astype(np.uint8)
+            columns[self._renames(name)] = pa.array(np.ascontiguousarray(values))
+        return pa.table(columns)
+
+
+def looks_like_las(head: bytes) -> bool:
+    return head[:4] == LAS_SIGNATURE

@@ -1,0 +1,397 @@
+"""Survey: the inventory of a source — every file, what it is, and what is wrong with it.
+
+The same per-file inspection feeds ``migrate``, so what the survey reports is exactly what the
+migration will do with each file.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import hashlib
+import re
+from collections import Counter
+from dataclasses import asdict, dataclass, field
+from datetime import datetime
+from pathlib import PurePosixPath
+from typing import Any, Iterable
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from archive.layout import check_station
+from archive.recipe import Recipe, load_recipe
+from archive.sources import DamagedSource, SourceError, classify, open_points, scan_time_of
+from archive.storage import filesystem, join
+from archive.timeutil import parse_stamp
+
+HASH_BLOCK = 8 << 20
+HEAD_BYTES = 4096
+
+
+@dataclass
+class FileReport:
+    """One source file as the survey found it."""
+
+    relpath: str
+    size: int
+    kind: str  # points | grid | sidecar | other
+    status: str = "ok"  # ok | damaged | unusable | duplicate | ignored
+    sha256: str = ""
+    format: str = ""
+    version: str = ""
+    point_format: int | None = None
+    station: str | None = None
+    scan_time: datetime | None = None
+    time_source: str | None = None  # gps | name
+    declared_count: int | None = None
+    point_count: int | None = None  # points that can be read
+    bounds: tuple[float, ...] | None = None  # xmin ymin zmin xmax ymax zmax of the readable points
+    crs_wkt: str | None = None
+    crs_source: str | None = None  # file | recipe
+    product: str | None = None  # grid files
+    columns: tuple[str, ...] = ()
+    duplicate_of: str | None = None
+    problems: list[str] = field(default_factory=list)
+    mtime: float | None = None
+
+    @property
+    def usable(self) -> bool:
+        return self.status in ("ok", "ignored")
+
+    @property
+    def crs_name(self) -> str | None:
+        if not self.crs_wkt:
+            return None
+        from pyproj import CRS
+
+        crs = CRS.from_wkt(self.crs_wkt)
+        auth = crs.to_authority()
+        return f"{auth[0]}:{auth[1]}" if auth else crs.name
+
+
+@dataclass
+class SurveyResult:
+    source: str
+    files: list[FileReport]
+
+    @property
+    def ok(self) -> bool:
+        return all(f.usable for f in self.files)
+
+    def table(self) -> pa.Table:
+        rows = []
+        for f in self.files:
+            d = asdict(f)
+            d["bounds"] = list(f.bounds) if f.bounds else None
+            d["columns"] = list(f.columns)
+            d["crs"] = f.crs_name
+            rows.append(d)
+        schema = pa.schema([
+            ("relpath", pa.string()), ("kind", pa.string()), ("status", pa.string()), ("format", pa.string()),
+            ("version", pa.string()), ("point_format", pa.int16()), ("station", pa.string()),
+            ("scan_time", pa.timestamp("us", tz="UTC")), ("time_source", pa.string()),
+            ("declared_count", pa.int64()), ("point_count", pa.int64()), ("bounds", pa.list_(pa.float64())),
+            ("crs", pa.string()), ("crs_source", pa.string()), ("product", pa.string()), ("size", pa.int64()),
+            ("sha256", pa.string()), ("duplicate_of", pa.string()), ("problems", pa.list_(pa.string())),
+            ("columns", pa.list_(pa.string())), ("crs_wkt", pa.string()),
+        ])
+        return pa.Table.from_pylist(rows, schema=schema)
+
+    def write(self, path: str, storage_options: dict | None = None) -> None:
+        fs, p = filesystem(path, storage_options)
+        tmp = p + ".part"
+        with fs.open(tmp, "wb") as fh:
+            pq.write_table(self.table(), fh)
+        fs.mv(tmp, p)
+
+    def summary(self) -> str:
+        """A readable account for the terminal: counts by kind and station, then every problem."""
+        kinds = Counter(f.kind for f in self.files)
+        status = Counter(f.status for f in self.files)
+        points = sum(f.point_count or 0 for f in self.files if f.kind == "points" and f.status == "ok")
+        stations = Counter(f.station for f in self.files if f.kind == "points" and f.station)
+        lines = [
+            f"survey of {self.source}: {len(self.files)} files "
+            + ", ".join(f"{n} {k}" for k, n in sorted(kinds.items())),
+            "status: " + ", ".join(f"{n} {k}" for k, n in sorted(status.items())),
+            f"usable points: {points:,} in {sum(1 for f in self.files if f.kind == 'points' and f.status == 'ok')} scans",
+        ]
+        if stations:
+            lines.append("stations: " + ", ".join(f"{s} ({n} files)" for s, n in sorted(stations.items())))
+        bad = [f for f in self.files if f.status not in ("ok",) and f.kind != "sidecar"]
+        if bad:
+            lines.append("")
+            lines.append("problems:")
+            for f in bad:
+                reason = "; ".join(f.problems) or f.status
+                lines.append(f"  [{f.status}] {f.relpath}: {reason}")
+        return "\n".join(lines)
+
+
+def walk_source(fs, root: str, recipe: Recipe) -> list[tuple[str, str, int, float | None]]:
+    """(path, relpath, size, mtime) of every file under root, sorted, with include/exclude applied."""
+    found = fs.find(root, detail=True, withdirs=False)
+    out = []
+    for path, info in found.items():
+        if info.get("type") == "directory":
+            continue
+        relpath = path[len(root) :].lstrip("/") if path.startswith(root) else PurePosixPath(path).name
+        if not _selected(relpath, recipe):
+            continue
+        out.append((path, relpath, int(info.get("size") or 0), info.get("mtime") or info.get("LastModified")))
+    out.sort(key=lambda t: t[1])
+    return [(p, r, s, _as_seconds(m)) for p, r, s, m in out]
+
+
+def _as_seconds(value: Any) -> float | None:
+    if value is None:
+        return None
+    if isinstance(value, datetime):
+        return value.timestamp()
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        return None
+
+
+def _match(relpath: str, pattern: str) -> bool:
+    if fnmatch.fnmatchcase(relpath, pattern):
+        return True
+    if pattern.startswith("**/"):
+        return fnmatch.fnmatchcase(relpath, pattern[3:]) or any(
+            fnmatch.fnmatchcase("/".join(relpath.split("/")[i:]), pattern[3:]) for i in range(1, relpath.count("/") + 1)
+        )
+    return False
+
+
+def _selected(relpath: str, recipe: Recipe) -> bool:
+    return any(_match(relpath, p) for p in recipe.include) and not any(_match(relpath, p) for p in recipe.exclude)
+
+
+def station_of(relpath: str, recipe: Recipe) -> str:
+    """Station id from the path: the recipe's pattern (default: the first folder), renamed by [stations]."""
+    m = re.search(recipe.station_pattern, relpath)
+    if not m or not m.group("station"):
+        raise SourceError(
+            f"{relpath}: cannot tell the station from the path; put the file in a station folder "
+            "or set [paths] station in the recipe"
+        )
+    folder = m.group("station")
+    rule = recipe.station_rule(folder)
+    if rule is not None:
+        return check_station(rule.id)
+    plain = re.sub(r"[^A-Za-z0-9_.]+", "_", folder).strip("_.")
+    if not plain:
+        raise SourceError(f"{relpath}: folder {folder!r} gives no usable station id; map it in the recipe [stations]")
+    return check_station(plain)
+
+
+def file_sha256(fs, path: str) -> str:
+    digest = hashlib.sha256()
+    with fs.open(path, "rb") as fh:
+        while block := fh.read(HASH_BLOCK):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def inspect_file(fs, path: str, relpath: str, size: int, recipe: Recipe, *, deep: bool = True, mtime=None) -> FileReport:
+    """Everything the survey reports about one file; never raises for a bad file."""
+    report = FileReport(relpath=relpath, size=size, kind="other", mtime=mtime)
+    try:
+        with fs.open(path, "rb") as fh:
+            head = fh.read(HEAD_BYTES)
+        report.kind = classify(relpath, head)
+        report.sha256 = file_sha256(fs, path)
+    except OSError as exc:
+        report.status = "unusable"
+        report.problems.append(f"cannot be read ({exc}); check permissions and the storage connection")
+        return report
+    if report.kind in ("other", "sidecar"):
+        report.status = "ignored"
+        if report.kind == "other":
+            report.problems.append("not a point or grid file; ignored")
+        return report
+    try:
+        report.station = station_of(relpath, recipe)
+    except (SourceError, ValueError) as exc:
+        report.status = "unusable"
+        report.problems.append(_reason(exc, relpath))
+        return report
+    if report.kind == "grid":
+        return _inspect_grid(fs, path, report, recipe)
+    return _inspect_points(fs, path, head, report, recipe, deep)
+
+
+def _inspect_points(fs, path: str, head: bytes, report: FileReport, recipe: Recipe, deep: bool) -> FileReport:
+    relpath = report.relpath
+    try:
+        reader = open_points(fs, path, relpath, report.size, head, recipe)
+    except SourceError as exc:
+        report.status = "unusable"
+        report.problems.append(_reason(exc, relpath))
+        return report
+    h = reader.header
+    report.format, report.version, report.point_format = h.format, h.version, h.point_format
+    report.declared_count, report.columns = h.declared_count, h.columns
+    report.problems.extend(h.problems)
+    if deep:
+        bounds = None
+        try:
+            for table in reader.chunks(salvage=True):
+                bounds = _merge_bounds(bounds, _bounds(table))
+        except SourceError as exc:
+            report.status = "unusable"
+            report.problems.append(_reason(exc, relpath))
+            return report
+        report.point_count = reader.tally.points
+        report.bounds = bounds
+        report.problems.extend(p for p in reader.tally.problems if p not in report.problems)
+        if reader.tally.points == 0 and "file declares zero points" not in report.problems:
+            report.problems.append("no readable points")
+    else:
+        report.point_count = h.declared_count
+        report.bounds = h.bounds
+    time = scan_time_of(h, reader.tally) if deep else None
+    if time is not None:
+        report.scan_time, report.time_source = time, "gps"
+    else:
+        stamp = parse_stamp(PurePosixPath(relpath).name, recipe.zone) or parse_stamp(relpath, recipe.zone)
+        if stamp is not None:
+            report.scan_time, report.time_source = stamp, "name"
+    if h.crs_wkt:
+        report.crs_wkt, report.crs_source = h.crs_wkt, "file"
+    elif recipe.crs:
+        report.crs_wkt, report.crs_source = _wkt(recipe.crs), "recipe"
+    unusable = []
+    if report.scan_time is None:
+        unusable.append(
+            "no scan time: the points carry no absolute GPS time and the name has no YYYYMMDD_HHMMSS stamp; "
+            "rename the file or set [paths] time in the recipe"
+        )
+    if report.crs_wkt is None:
+        unusable.append("no CRS in the file; give --crs EPSG:XXXX or [site] crs in the recipe")
+    if (report.point_count or 0) == 0 and deep:
+        unusable.append("no readable points")
+    report.problems.extend(unusable)
+    if unusable:
+        report.status = "unusable"
+    elif len(report.problems) > 0:
+        report.status = "damaged"
+    return report
+
+
+def _inspect_grid(fs, path: str, report: FileReport, recipe: Recipe) -> FileReport:
+    from archive.sources.grids import probe_grid
+
+    try:
+        info = probe_grid(fs, path, report.relpath, recipe)
+    except (SourceError, ValueError, OSError) as exc:
+        report.status = "unusable"
+        report.problems.append(_reason(exc, report.relpath))
+        return report
+    report.format = info.format
+    report.product = info.product
+    report.crs_wkt = info.crs_wkt
+    report.crs_source = info.crs_source
+    report.bounds = info.bounds
+    report.scan_time = info.time
+    report.time_source = "name" if info.time else None
+    if report.crs_wkt is None:
+        report.status = "unusable"
+        report.problems.append("grid has no CRS; set crs in a recipe [[grids.files]] rule or give --crs")
+    return report
+
+
+def _reason(exc: Exception, relpath: str) -> str:
+    """An exception's message without the file name: the report row already names the file."""
+    return str(exc).removeprefix(f"{relpath}: ")
+
+
+def _wkt(crs: str) -> str:
+    from pyproj import CRS
+
+    return CRS.from_user_input(crs).to_wkt()
+
+
+def _bounds(table: pa.Table) -> tuple[float, ...] | None:
+    import pyarrow.compute as pc
+
+    if table.num_rows == 0:
+        return None
+    lows, highs = [], []
+    for axis in "xyz":
+        lo, hi = pc.min_max(table.column(axis)).values()
+        lows.append(float(lo.as_py()))
+        highs.append(float(hi.as_py()))
+    return (*lows, *highs)
+
+
+def _merge_bounds(a, b):
+    if a is None:
+        return b
+    if b is None:
+        return a
+    return (*(min(x, y) for x, y in zip(a[:3], b[:3])), *(max(x, y) for x, y in zip(a[3:], b[3:])))
+
+
+def mark_duplicates(files: Iterable[FileReport]) -> None:
+    """The first file (by path) is the original: later byte-identical files become duplicates, and
+    later point files claiming the same station and scan time become unusable (one scan id, one scan)."""
+    seen: dict[str, str] = {}
+    scans: dict[tuple[str, datetime], str] = {}
+    for f in files:
+        if f.kind not in ("points", "grid") or not f.sha256:
+            continue
+        if f.sha256 in seen:
+            f.status = "duplicate"
+            f.duplicate_of = seen[f.sha256]
+            f.problems.append(f"byte-identical to {seen[f.sha256]}; converted once from that file")
+            continue
+        seen[f.sha256] = f.relpath
+        if f.kind == "points" and f.status in ("ok", "damaged") and f.scan_time is not None:
+            key = (f.station, f.scan_time.replace(microsecond=0))
+            if key in scans:
+                f.status = "unusable"
+                f.problems.append(
+                    f"same station and scan time as {scans[key]} but different content; "
+                    "remove one of them or give them distinct time stamps"
+                )
+            else:
+                scans[key] = f.relpath
+
+
+def survey(
+    source: str,
+    recipe: Recipe | str | None = None,
+    crs: str | None = None,
+    *,
+    storage_options: dict | None = None,
+    deep: bool = True,
+    progress: bool = False,
+) -> SurveyResult:
+    """Inventory a source (local path or fsspec URL). Always walks every file; never raises for bad ones."""
+    if not isinstance(recipe, Recipe):
+        recipe = load_recipe(recipe, crs)
+    else:
+        recipe = recipe.with_crs(crs)
+    fs, root = filesystem(source, storage_options)
+    if not fs.exists(root):
+        raise FileNotFoundError(f"source {source} does not exist")
+    entries = walk_source(fs, root, recipe)
+    files = []
+    bar = _bar(progress, total=sum(e[2] for e in entries), unit="B", desc="survey")
+    for path, relpath, size, mtime in entries:
+        files.append(inspect_file(fs, path, relpath, size, recipe, deep=deep, mtime=mtime))
+        bar.update(size)
+    bar.close()
+    mark_duplicates(files)
+    return SurveyResult(source=str(source), files=files)
+
+
+def _bar(enabled: bool, **kwargs):
+    from tqdm.auto import tqdm
+
+    return tqdm(disable=not enabled, unit_scale=True, leave=False, **kwargs)
+
+
+__all__ = ["FileReport", "SurveyResult", "survey", "inspect_file", "walk_source", "station_of", "join"]
