@@ -466,8 +466,6 @@ def _retire_scan(shelf: Path, ledger: Ledger, scan_id: str) -> None:
 
 
 def _ingest_grids(fs, root, reports, recipe, shelf: Path, ledger: Ledger, result: MigrateResult, storage_options) -> None:
-    from archive.grids import ingest_grid
-
     for report in reports:
         if report.kind != "grid":
             continue
@@ -483,6 +481,8 @@ def _ingest_grids(fs, root, reports, recipe, shelf: Path, ledger: Ledger, result
             result.failed.append((report.relpath, why))
             ledger.record_file(report.relpath, status="failed", error=why, **common)
             continue
+        from archive.grids import ingest_grid
+
         rule = recipe.grid_rule(report.relpath)
         try:
             ingested = ingest_grid(

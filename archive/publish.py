@@ -13,6 +13,7 @@ from __future__ import annotations
 import hashlib
 import io
 import logging
+import os
 import posixpath
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -162,19 +163,23 @@ def publish(
     dry_run: bool = False,
     workers: int = 8,
     verify: bool = True,
+    rehash: bool = False,
     progress: Callable[[int], Any] | None = None,
 ) -> PublishReport:
     """Copy ``shelf`` to ``dest`` (any fsspec URL) and return what was (or would be) uploaded.
 
-    ``progress`` is called with a byte count as files finish (the CLI feeds a tqdm bar).
+    Files at ``dest`` whose size and checksum the previous manifest vouches for are skipped
+    without reading them; ``rehash=True`` hashes every same-size remote copy instead (slower,
+    catches changes made behind the manifest's back). ``progress`` is called with a byte
+    count as files finish (the CLI feeds a tqdm bar).
     Raises PublishError when a written file does not read back with its size and checksum;
     the root catalog is then not written, so readers never see the broken copy.
     """
     options = dict(storage_options or {})
-    shown = redact(dest)
+    shown = redact(os.fspath(dest))
     try:
-        src_fs, src_root = fsspec.url_to_fs(shelf, **(source_options or {}))
-        dst_fs, dst_root = fsspec.url_to_fs(dest, **options)
+        src_fs, src_root = fsspec.url_to_fs(os.fspath(shelf), **(source_options or {}))
+        dst_fs, dst_root = fsspec.url_to_fs(os.fspath(dest), **options)
     except Exception as e:
         raise PublishError(f"{shown}: cannot open the destination: {_scrub(str(e), options)}") from None
     src_root, dst_root = src_root.rstrip("/"), dst_root.rstrip("/")
@@ -202,7 +207,7 @@ def publish(
     def unchanged(path: str) -> bool:
         if remote_sizes.get(path) != local[path]:
             return False
-        if manifest.get(path) == (local[path], digests[path]):
+        if not rehash and manifest.get(path) == (local[path], digests[path]):
             return True
         return _sha256(dst_fs, f"{dst_root}/{path}") == digests[path]
 
@@ -221,8 +226,10 @@ def publish(
         target = f"{dst_root}/{path}"
         src = f"{prefix}{path}"
         try:
-            dst_fs.makedirs(posixpath.dirname(target), exist_ok=True)
-            tmp = f"{posixpath.dirname(target)}/.{posixpath.basename(target)}.publishing" if local_dst else target
+            tmp = target
+            if local_dst:  # object stores have no folders (and makedirs there creates buckets)
+                dst_fs.makedirs(posixpath.dirname(target), exist_ok=True)
+                tmp = f"{posixpath.dirname(target)}/.{posixpath.basename(target)}.publishing"
             if isinstance(src_fs, LocalFileSystem):
                 dst_fs.put_file(src, tmp)
             else:
@@ -279,8 +286,8 @@ def _manifest_bytes(entries: list[FileEntry]) -> bytes:
 def _write_manifest(fs, root: str, data: bytes, local_dst: bool, shown: str, options: dict) -> None:
     target = f"{root}/{layout.MANIFEST}"
     try:
-        fs.makedirs(root, exist_ok=True)
         if local_dst:
+            fs.makedirs(root, exist_ok=True)
             tmp = f"{root}/.{layout.MANIFEST}.publishing"
             fs.pipe_file(tmp, data)
             fs.mv(tmp, target)

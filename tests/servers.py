@@ -30,6 +30,8 @@ CRS_CODE = "EPSG:32633"  # a real projected CRS; the site itself is invented
 ORIGIN = (512_000.0, 5_420_000.0)
 SIDE = 200.0  # metres, every scan covers the same square
 TILES = 8  # 8 x 8 tiles, one row group each, in serpentine order
+# a window of ~2% of one scan's area; edges at half-millimetres so no stored point sits on one
+BOX = (ORIGIN[0] + 60.0005, ORIGIN[1] + 90.0005, ORIGIN[0] + 88.2845, ORIGIN[1] + 118.2845)
 SCANS = (
     # station, UTC time, points, encoding of x/y/z
     ("north", datetime(2026, 3, 1, 6, 0, tzinfo=timezone.utc), 64_000, "las"),

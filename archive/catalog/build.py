@@ -9,7 +9,6 @@ recomputed from the Items held in the index, so no Item JSON has to be re-read.
 from __future__ import annotations
 
 import logging
-import sqlite3
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
@@ -130,11 +129,11 @@ def _write(
         (SCANS_COLLECTION, scans),
         (GRIDS_COLLECTION, grids_collection(cubes, settings, scans["extent"])),
     ):
-        shelf.write_json(path, doc)
+        shelf.write_json(path, doc, pretty=True)
         result.written.append(path)
     write_index(shelf, all_items, collection={k: v for k, v in scans.items() if k != "links"})
     result.written.append("scans/items.parquet")
-    shelf.write_json(CATALOG, root_catalog(settings))
+    shelf.write_json(CATALOG, root_catalog(settings), pretty=True)
     result.written.append(CATALOG)
     result.item_count, result.grid_count = len(all_items), len(cubes)
     return result
@@ -187,16 +186,14 @@ def settings_from_catalog(shelf: Shelf) -> dict[str, Any]:
 
 def records_from_ledger(shelf_url: str) -> list[ScanRecord]:
     """Every finished scan in the shelf's ledger (read-only; the ledger is local only)."""
+    from archive.ledger import iter_scan_records
+
     shelf = Shelf(shelf_url)
-    path = shelf.path(LEDGER)
     if not shelf.exists(LEDGER):
-        raise FileNotFoundError(f"{path} not found: `scanshelf catalog` needs a local shelf written by migrate")
-    con = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
-    try:
-        rows = con.execute("SELECT record FROM scans WHERE status='done'").fetchall()
-    finally:
-        con.close()
-    return [ScanRecord.from_json(r[0]) for r in rows]
+        raise FileNotFoundError(
+            f"{shelf.path(LEDGER)} not found: `scanshelf catalog` needs a local shelf written by migrate"
+        )
+    return list(iter_scan_records(shelf.path(LEDGER)))
 
 
 def rebuild_catalog(

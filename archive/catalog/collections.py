@@ -182,7 +182,7 @@ def grids_collection(
         license=license_id,
         providers=_providers(settings),
         stac_extensions=[ext.DATACUBE, ext.FILE, ext.SCANSHELF],
-        summaries=pystac.Summaries({f"{ext.PREFIX}station": sorted({g.station for g in grids})}),
+        summaries=pystac.Summaries({f"{ext.PREFIX}station": sorted({g.station for g in grids})} if grids else {}),
     )
     for link in _links(GRIDS_COLLECTION, [("root", CATALOG, "Shelf catalog"), ("parent", CATALOG, "Shelf catalog")]):
         coll.add_link(link)

@@ -1,9 +1,9 @@
 """Where a scan's points are, as a small WGS84 polygon for its STAC Item.
 
 A terrestrial scan covers an irregular fan, so its bbox overstates the area a lot. Migrate keeps
-a coarse occupancy mask per scan while streaming points; here the occupied cells are traced
-into polygons, small gaps closed, holes dropped, the outline simplified to a few hundred
-vertices at most, and reprojected to WGS84 (GeoJSON requires longitude/latitude).
+a coarse occupancy mask per scan while streaming points; here one-cell gaps are closed and
+holes filled on that raster, the occupied cells traced into polygons, the outline simplified to
+a few hundred vertices at most, and reprojected to WGS84 (GeoJSON requires longitude/latitude).
 """
 
 from __future__ import annotations
@@ -15,9 +15,12 @@ import shapely
 from affine import Affine
 from pyproj import CRS, Transformer
 from rasterio import features
+from scipy import ndimage
 from shapely.geometry import MultiPolygon, Polygon, mapping, shape
 
 MAX_VERTICES = 300
+MAX_PARTS = 20
+MIN_PART_SHARE = 0.005
 
 
 def outline(mask: np.ndarray, transform: Affine | Sequence[float], crs_wkt: str) -> dict:
@@ -38,25 +41,40 @@ def outline(mask: np.ndarray, transform: Affine | Sequence[float], crs_wkt: str)
 
 
 def _native_outline(mask: np.ndarray, tf: Affine) -> Polygon | MultiPolygon:
-    """Trace cells, close one-cell gaps, drop holes, simplify until the vertex budget holds."""
+    """Close one-cell gaps and fill holes on the raster, trace, simplify to the vertex budget.
+
+    Working on the raster first keeps tracing cheap: a sparse far field would otherwise trace
+    into tens of thousands of single-cell polygons.
+    """
     cell = max(abs(tf.a), abs(tf.e))
-    parts = [shape(g) for g, _ in features.shapes(mask.astype(np.uint8), mask=mask, transform=tf)]
-    geom = shapely.union_all(parts)
-    # A closing (grow then shrink by one cell) joins points separated by an empty cell
-    # without inflating the outer edge; mitre joins keep the cell corners square.
-    geom = geom.buffer(cell, join_style="mitre").buffer(-cell, join_style="mitre")
-    geom = _drop_holes(_polygonal(geom))
+    padded = np.pad(mask, 1)  # so the closing does not treat the array edge as occupied
+    closed = ndimage.binary_closing(padded, structure=np.ones((3, 3), bool))[1:-1, 1:-1] | mask
+    filled = ndimage.binary_fill_holes(closed)  # occluded shadows inside the fan do not help a search
+    parts = [shape(g) for g, _ in features.shapes(filled.astype(np.uint8), mask=filled, transform=tf)]
+    geom = _main_parts(_drop_holes(_polygonal(shapely.union_all(parts))))
     tolerance = cell / 2
-    simple = geom.simplify(tolerance)
-    while shapely.get_num_coordinates(simple) > MAX_VERTICES:
+    for _ in range(30):
+        simple = _polygonal(shapely.make_valid(geom.simplify(tolerance)))
+        if not simple.is_empty and shapely.get_num_coordinates(simple) <= MAX_VERTICES:
+            return simple
         tolerance *= 2
-        simple = geom.simplify(tolerance)
-    simple = _polygonal(shapely.make_valid(simple))
-    return simple if not simple.is_empty else geom
+    return geom.convex_hull.simplify(cell)  # last resort; a hull is never too detailed to search
+
+
+def _main_parts(geom: Polygon | MultiPolygon) -> Polygon | MultiPolygon:
+    """Drop specks (stray returns far from the rest) so that many parts cannot break the budget.
+
+    Keeps the largest parts, at most MAX_PARTS, and of those only the ones holding at least
+    MIN_PART_SHARE of the area.
+    """
+    polys = sorted(getattr(geom, "geoms", [geom]), key=lambda p: p.area, reverse=True)
+    total = sum(p.area for p in polys)
+    keep = [p for p in polys[:MAX_PARTS] if p.area >= MIN_PART_SHARE * total] or polys[:1]
+    return keep[0] if len(keep) == 1 else MultiPolygon(keep)
 
 
 def _drop_holes(geom: Polygon | MultiPolygon) -> Polygon | MultiPolygon:
-    """Holes (occluded shadows inside the fan) add vertices but do not help a search."""
+    """Outer rings only (a union of touching cells can still leave a ring between parts)."""
     polys = [Polygon(p.exterior) for p in getattr(geom, "geoms", [geom])]
     return polys[0] if len(polys) == 1 else MultiPolygon(polys)
 

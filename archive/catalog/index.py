@@ -14,7 +14,9 @@ import json
 from datetime import datetime
 from typing import Any
 
+import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import shapely
 from shapely.geometry import shape
@@ -179,3 +181,73 @@ def index_items(shelf: Shelf) -> list[dict[str, Any]]:
     if not shelf.exists(SCANS_INDEX):
         return []
     return [json.loads(t) for t in read_index(shelf, ["item_json"]).column("item_json").to_pylist()]
+
+
+_PRUNE = ("bbox.xmin", "bbox.ymin", "bbox.xmax", "bbox.ymax", "start_datetime", "end_datetime", "scanshelf:station")
+
+
+def search_index(
+    shelf: Shelf,
+    bbox: tuple[float, float, float, float] | None = None,
+    start: datetime | None = None,
+    end: datetime | None = None,
+    station: str | None = None,
+) -> list[str]:
+    """Ids of the Items whose bbox (WGS84) and [start_datetime, end_datetime] meet the query.
+
+    Row groups are skipped on their min/max statistics before anything is read, so a search
+    reads the footer and the one or two groups of the matching station and period.
+    """
+    with shelf.fs.open(shelf.path(SCANS_INDEX), "rb", cache_type="none") as f:
+        pf = pq.ParquetFile(f)
+        md = pf.metadata
+        where = {md.schema.column(i).path: i for i in range(md.num_columns)}
+        cols = {name: where[name] for name in _PRUNE if name in where}
+        groups = [g for g in range(md.num_row_groups) if _may_match(md.row_group(g), cols, bbox, start, end, station)]
+        table = pf.read_row_groups(groups, columns=["id", "bbox", "start_datetime", "end_datetime", "scanshelf:station"])
+    keep = pa.array(np.ones(table.num_rows, bool))
+    for cond in _conditions(table, bbox, start, end, station):
+        keep = pc.and_(keep, cond)
+    return table.filter(keep).column("id").to_pylist()
+
+
+def _may_match(rg: pq.RowGroupMetaData, cols: dict[str, int], bbox, start, end, station) -> bool:
+    st = {}
+    for name, i in cols.items():
+        stats = rg.column(i).statistics
+        if stats is not None and stats.has_min_max:
+            st[name] = stats
+
+    def below(col: str, value: Any) -> bool:  # every value in the group is < value
+        return col in st and st[col].max < value
+
+    def above(col: str, value: Any) -> bool:  # every value in the group is > value
+        return col in st and st[col].min > value
+
+    if bbox is not None:
+        w, s, e, n = bbox
+        if below("bbox.xmax", w) or above("bbox.xmin", e) or below("bbox.ymax", s) or above("bbox.ymin", n):
+            return False
+    if start is not None and below("end_datetime", start):
+        return False
+    if end is not None and "start_datetime" in st and st["start_datetime"].min >= end:
+        return False
+    if station is not None and (below("scanshelf:station", station) or above("scanshelf:station", station)):
+        return False
+    return True
+
+
+def _conditions(table: pa.Table, bbox, start, end, station):
+    if bbox is not None:
+        w, s, e, n = bbox
+        b = table.column("bbox").combine_chunks()
+        yield pc.greater_equal(b.field("xmax"), w)
+        yield pc.less_equal(b.field("xmin"), e)
+        yield pc.greater_equal(b.field("ymax"), s)
+        yield pc.less_equal(b.field("ymin"), n)
+    if start is not None:
+        yield pc.greater_equal(table.column("end_datetime"), pa.scalar(start, _TIME))
+    if end is not None:
+        yield pc.less(table.column("start_datetime"), pa.scalar(end, _TIME))
+    if station is not None:
+        yield pc.equal(table.column("scanshelf:station"), station)

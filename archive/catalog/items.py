@@ -8,6 +8,7 @@ v1.0.0 with ``pc:encoding``), so they are written here directly.
 from __future__ import annotations
 
 from datetime import datetime, timezone
+from functools import cache
 from importlib.metadata import PackageNotFoundError, version
 from typing import Any
 
@@ -35,6 +36,7 @@ ITEM_EXTENSIONS = [
 ]
 
 
+@cache
 def software_version() -> str:
     try:
         return version("scanshelf")

@@ -55,8 +55,10 @@ class Shelf:
         else:
             self.fs.pipe_file(target, data)
 
-    def write_json(self, rel: str, obj: dict[str, Any]) -> None:
-        self.write_bytes(rel, (json.dumps(obj, indent=1, ensure_ascii=False) + "\n").encode())
+    def write_json(self, rel: str, obj: dict[str, Any], pretty: bool = False) -> None:
+        """Compact by default: indenting uses json's slow pure-Python encoder (10,000 Items)."""
+        text = json.dumps(obj, indent=1 if pretty else None, ensure_ascii=False)
+        self.write_bytes(rel, (text + "\n").encode())
 
     def remove(self, rel: str) -> None:
         if self.exists(rel):

@@ -82,7 +82,17 @@ def verify_shelf(
         for key, asset in doc.get("assets", {}).items():
             _check_asset(shelf, path, key, asset, doc, quick, report)
     _check_index(shelf, items, report)
+    _check_orphans(shelf, items, report)
     return report
+
+
+def _check_orphans(shelf: Shelf, items: dict[str, dict[str, Any]], report: VerifyReport) -> None:
+    """Item files no Collection links to are invisible to readers: a half-finished update."""
+    base = shelf.path("scans/items")
+    for path in sorted(shelf.fs.glob(f"{base}/*/*.json")):
+        rel = "scans/items/" + path[len(base) + 1 :]
+        if rel not in items:
+            report.problems.append(f"{rel}: Item file not linked from scans/collection.json")
 
 
 def _load(shelf: Shelf, path: str, report: VerifyReport) -> dict[str, Any] | None:

@@ -23,8 +23,8 @@ GPS_EPOCH_POSIX = 315_964_800.0  # 1980-01-06T00:00:00Z, start of GPS time
 # GPS time runs ahead of UTC by the leap seconds since 1980: 18 s since 2017-01-01
 # (from memory; no leap second has been added since).
 GPS_MINUS_UTC = 18.0
-_STEPS = np.geomspace(5.0, 9000.0, 30)  # ray-marching ranges (m), then bisection
-_BISECTIONS = 17
+_STEPS = np.geomspace(8.0, 9000.0, 24)  # ray-marching ranges (m), then bisection
+_BISECTIONS = 9
 
 _REFLECTIVITY = {site.ICE: 0.45, site.ROCK: 0.30, site.SHRUB: 0.50, site.NOISE: 0.10, site.WATER: 0.03}
 _COLOUR = {  # 8-bit RGB of each surface class
@@ -108,6 +108,17 @@ def _cast(origin: tuple[float, float, float], d: np.ndarray, t: float) -> np.nda
         below = oz + mid * dk[2] <= _height(ou + mid * dk[0], ov + mid * dk[1], t)
         hi = np.where(below, mid, hi)
         lo = np.where(below, lo, mid)
+    # the bracket is now ~1 m: two false-position steps bring smooth surfaces to mm
+    f_lo = oz + lo * dk[2] - _height(ou + lo * dk[0], ov + lo * dk[1], t)
+    f_hi = oz + hi * dk[2] - _height(ou + hi * dk[0], ov + hi * dk[1], t)
+    for _ in range(2):
+        mid = lo + (hi - lo) * f_lo / np.maximum(f_lo - f_hi, 1e-12)
+        f_mid = oz + mid * dk[2] - _height(ou + mid * dk[0], ov + mid * dk[1], t)
+        below = f_mid <= 0
+        hi, f_hi = np.where(below, mid, hi), np.where(below, f_mid, f_hi)
+        lo, f_lo = np.where(below, lo, mid), np.where(below, f_lo, f_mid)
+    hi = np.where(f_hi == 0, hi, lo + (hi - lo) * f_lo / np.maximum(f_lo - f_hi, 1e-12))
+    lo = hi
     rng = np.full(n, np.nan)
     rng[ok] = 0.5 * (lo + hi)
     return rng
@@ -126,9 +137,13 @@ def sweep(station: Station, start: float, n_points: int, seed: tuple[int, ...]) 
     el = np.radians(np.linspace(station.elevation[0], station.elevation[1], rows))
     dt = station.duration / (rows * cols)
     origin = station.local_origin
-    cols_per_chunk = max(1, min(CHUNK_BEAMS // rows, cols))
+    most = max(1, CHUNK_BEAMS // rows)
+    cols_per_chunk = min(most, cols)
     emitted, first_col, chunk = 0, 0, 0
     while emitted < n_points:
+        if chunk:  # size the next chunk by the points per column seen so far
+            per_col = max(emitted / first_col, 1.0)
+            cols_per_chunk = min(most, math.ceil(1.05 * (n_points - emitted) / per_col) + 1)
         rng = np.random.default_rng((*seed, chunk))
         col = np.arange(first_col, first_col + cols_per_chunk)
         az = np.radians(az0 + (col + 0.5) * daz)
@@ -146,7 +161,7 @@ def sweep(station: Station, start: float, n_points: int, seed: tuple[int, ...]) 
             if points["return_number"][last] < points["number_of_returns"][last]:
                 points["number_of_returns"][last] = points["return_number"][last]
         emitted += take
-        first_col += cols_per_chunk
+        first_col += col.size
         chunk += 1
         if take:
             points["point_source_id"] = np.full(take, station.number, np.uint16)

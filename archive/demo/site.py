@@ -58,7 +58,8 @@ def front_position(v: np.ndarray) -> np.ndarray:
 
 def flow_speed(u: np.ndarray, v: np.ndarray) -> np.ndarray:
     """Downglacier surface speed (m/day); zero off the ice."""
-    across = np.clip(1.0 - (v / HALF_WIDTH) ** 4, 0.0, 1.0)
+    w = v * v * (1.0 / HALF_WIDTH**2)
+    across = np.maximum(1.0 - w * w, 0.0)
     return FLOW_AT_FRONT * np.exp(np.minimum(u, 0.0) / FLOW_DECAY) * across
 
 
@@ -68,19 +69,20 @@ def velocity(u: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.n
     The flow converges slightly towards the centre line; the vertical part is what a tracked
     feature does: it follows the sloping surface down and sinks with the thinning.
     """
-    on_ice = (np.abs(v) < HALF_WIDTH) & (u < front_position(v))
-    speed = np.where(on_ice, flow_speed(u, v), 0.0)
+    ice = on_ice(u, v)
+    speed = np.where(ice, flow_speed(u, v), 0.0)
     vy = -0.05 * (v / HALF_WIDTH) * speed
-    vz = np.where(on_ice, -SURFACE_SLOPE * speed - THINNING, 0.0)
+    vz = np.where(ice, -SURFACE_SLOPE * speed - THINNING, 0.0)
     return speed, vy, vz
 
 
 def land(u: np.ndarray, v: np.ndarray) -> np.ndarray:
     """Bedrock and valley walls; the inlet floor lies deep below sea level."""
-    wall = 4.0 + 0.5 * np.maximum(np.abs(v) - HALF_WIDTH, 0.0) + 0.03 * np.maximum(-u, 0.0)
-    wall = wall + 0.6 * np.sin(u / 37.0) * np.cos(v / 29.0)  # rocky roughness
-    inlet = np.clip(u / 80.0, 0.0, 1.0) * np.clip((FJORD_HALF_WIDTH - np.abs(v)) / 60.0, 0.0, 1.0)
-    return wall - 60.0 * inlet
+    av = np.abs(v)
+    wall = 4.0 + 0.5 * np.maximum(av - HALF_WIDTH, 0.0) - 0.03 * np.minimum(u, 0.0)
+    inlet = np.clip(u * (1 / 80.0), 0.0, 1.0) * np.clip((FJORD_HALF_WIDTH - av) * (1 / 60.0), 0.0, 1.0)
+    wall -= 60.0 * inlet
+    return wall
 
 
 def ice_surface(u: np.ndarray, v: np.ndarray, posix_seconds: float) -> np.ndarray:
@@ -101,16 +103,27 @@ def ice_surface(u: np.ndarray, v: np.ndarray, posix_seconds: float) -> np.ndarra
     )
 
 
+def on_ice(u: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """Where the glacier is (the ragged front only matters within its 18 m of wobble)."""
+    ice = (np.abs(v) < HALF_WIDTH) & (u < 18.0)
+    near = np.flatnonzero(ice & (u > -18.0))
+    ice[near] = u[near] < front_position(v[near])
+    return ice
+
+
 def surface(u: np.ndarray, v: np.ndarray, posix_seconds: float) -> tuple[np.ndarray, np.ndarray]:
     """Elevation (m) and surface class of the visible surface at one instant."""
-    ground = land(u, v)
+    z = land(u, v)
+    cls = np.full(z.shape, ROCK, np.uint8)
     sea = float(tide(posix_seconds))
-    on_ice = (np.abs(v) < HALF_WIDTH) & (u < front_position(v))
-    ice = ice_surface(u, v, posix_seconds)
-    ice_wins = on_ice & (ice >= ground)
-    water_wins = ~ice_wins & (sea > ground)
-    z = np.where(ice_wins, ice, np.where(water_wins, sea, ground))
-    cls = np.where(ice_wins, ICE, np.where(water_wins, WATER, ROCK)).astype(np.uint8)
+    water = sea > z
+    z[water] = sea
+    cls[water] = WATER
+    idx = np.flatnonzero(on_ice(u, v))
+    ice = ice_surface(u[idx], v[idx], posix_seconds)
+    ice_wins = ice >= z[idx]
+    z[idx[ice_wins]] = ice[ice_wins]
+    cls[idx[ice_wins]] = ICE
     return z, cls
 
 

@@ -194,18 +194,25 @@ def open_cube(
     """
     if layout not in ("map", "series"):
         raise ValueError("layout must be 'map' or 'series'")
-    root = xr.open_zarr(url, storage_options=storage_options, zarr_format=3, consolidated=True, chunks={})
+    # dask chunks = whole shards: one request per epoch map (see FIELD-NOTES "Zarr v3"); the
+    # 1-D time coordinates are stored in longer chunks, which xarray warns about: harmless here
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="The specified chunks separate", category=UserWarning)
+        root = xr.open_zarr(url, storage_options=storage_options, zarr_format=3, consolidated=True,
+                            chunks={"time": 1, "y": -1, "x": -1})
+    root = root.assign_coords(scan_id=root["scan_id"].load())
+    root["points_outside"] = root["points_outside"].load()
     if layout == "series":
         try:
             ds = xr.open_zarr(url, group=SERIES_GROUP, storage_options=storage_options, zarr_format=3,
-                              consolidated=True, chunks={})
+                              consolidated=True, chunks={"time": -1, "y": 8 * SERIES_TILE, "x": 8 * SERIES_TILE})
         except (FileNotFoundError, KeyError, zarr.errors.GroupNotFoundError) as e:
             raise ValueError(f"{url} has no series copy; build it with archive.grids.write_series") from e
         live = root["scan_id"].values
         live = set(live[live != ""])
         if set(ds["scan_id"].values) != live:
             raise ValueError(f"the series copy of {url} is stale; rebuild it with archive.grids.write_series")
-        return ds
+        return ds.assign_coords(scan_id=ds["scan_id"].load())
     ok = root["scan_id"].values != ""
     if not ok.all():
         root = root.isel(time=np.flatnonzero(ok))

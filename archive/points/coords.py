@@ -31,6 +31,7 @@ class AxisEncoding:
     scale: float  # LAS scale (or 10^-k for text sources)
     offset: float  # LAS offset (0 for text sources)
     places: int  # k, digits after the decimal point in the stored DECIMAL
+    text: bool = False  # parsed from text: floats are the nearest doubles to the decimals
 
     @classmethod
     def for_las(cls, scale: float, offset: float) -> "AxisEncoding":
@@ -39,7 +40,7 @@ class AxisEncoding:
 
     @classmethod
     def for_text(cls, places: int) -> "AxisEncoding":
-        return cls(10.0**-places, 0.0, places)
+        return cls(10.0**-places, 0.0, places, text=True)
 
     @property
     def type(self) -> pa.DataType:
@@ -69,18 +70,18 @@ class AxisEncoding:
 
     def to_float(self, units: np.ndarray) -> np.ndarray:
         """Stored integers → float64 exactly as the source's reader computes them."""
-        if self._step == 1 and self._shift == 0 and self.offset == 0.0 and self.places > 0:
-            # text sources: the correctly rounded quotient equals float(text)
+        if self.text:
+            # the correctly rounded quotient of two exact doubles equals float(text)
             return units.astype(np.float64) / 10.0**self.places
         raw = (units - self._shift) // self._step
         return raw.astype(np.float64) * self.scale + self.offset
 
     def to_dict(self) -> dict:
-        return {"scale": self.scale, "offset": self.offset, "places": self.places}
+        return {"scale": self.scale, "offset": self.offset, "places": self.places, "text": self.text}
 
     @classmethod
     def from_dict(cls, d: dict) -> "AxisEncoding":
-        return cls(float(d["scale"]), float(d["offset"]), int(d["places"]))
+        return cls(float(d["scale"]), float(d["offset"]), int(d["places"]), bool(d.get("text", False)))
 
 
 def decimal_from_units(units: np.ndarray, places: int) -> pa.Array:

@@ -14,6 +14,7 @@ put back in arrival (scan) order, which keeps neighbouring values close for delt
 
 from __future__ import annotations
 
+import itertools
 import os
 import shutil
 import tempfile
@@ -22,13 +23,15 @@ from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from .coords import decimal_from_units, units_of
 from .hilbert import SiteGrid
 
 COORDS = ("x", "y", "z")
 HIST_BITS = 20  # fine key prefix used to cut buckets: ~1e6 bins over the site
-SORT_OVERHEAD = 40  # bytes per row beyond the column data while a bucket is sorted
+BIN_BITS = 20  # bins per bucket when assigning rows to row groups
+SORT_OVERHEAD = 40  # bytes per row beyond the column data while a bucket is grouped
 
 
 @dataclass(frozen=True)
@@ -84,101 +87,99 @@ class _Column:
 
 
 @dataclass
-class Bucket:
-    """Rows of one key range (any order): keys, arrival index, column values and validity."""
+class Part:
+    """Rows in arrival order: keys, column values, validity of nullable columns, arrival index."""
 
     keys: np.ndarray
-    rows: np.ndarray
     values: dict[str, np.ndarray]
     valid: dict[str, np.ndarray]
+    rows: np.ndarray | None = None  # kept by the spill path, where file order is not arrival order
+
+    def __len__(self) -> int:
+        return len(self.keys)
+
+    def take(self, idx: np.ndarray) -> "Part":
+        rows = None if self.rows is None else self.rows[idx]
+        return Part(self.keys[idx], {k: v[idx] for k, v in self.values.items()}, {k: v[idx] for k, v in self.valid.items()}, rows)
+
+    def permute(self, idx: np.ndarray) -> None:
+        """Reorder in place, one column at a time, so the copy never doubles the whole part."""
+        self.keys = self.keys[idx]
+        self.rows = None if self.rows is None else self.rows[idx]
+        for d in (self.values, self.valid):
+            for k in d:
+                d[k] = d[k][idx]
 
 
-class _Store:
-    """Collects rows; `buckets()` gives them back as ascending, disjoint key ranges."""
+def _concat(parts: list[Part], nullable: set[str]) -> Part:
+    rows = [p.rows for p in parts]
+    return Part(
+        np.concatenate([p.keys for p in parts]),
+        {k: np.concatenate([p.values[k] for p in parts]) for k in parts[0].values},
+        {k: np.concatenate([p.valid.get(k, np.ones(len(p), np.uint8)) for p in parts]) for k in nullable},
+        None if any(r is None for r in rows) else np.concatenate(rows),
+    )
 
+
+class _MemoryStore:
     def __init__(self, columns: list[_Column]):
         self.columns = columns
-        self.count = 0
+        self.parts: list[Part] = []
         self.nullable: set[str] = set()
+        self.count = 0
 
-    def row_bytes(self) -> int:
-        return sum(c.dtype.itemsize for c in self.columns) + len(self.nullable) + 16
-
-
-class _MemoryStore(_Store):
-    def __init__(self, columns: list[_Column]):
-        super().__init__(columns)
-        self.parts: list[tuple[np.ndarray, dict, dict]] = []
-
-    def add(self, keys: np.ndarray, values: dict, valid: dict) -> None:
-        self.parts.append((keys, values, valid))
-        self.nullable |= set(valid)
-        self.count += len(keys)
+    def add(self, part: Part) -> None:
+        self.parts.append(part)
+        self.nullable |= set(part.valid)
+        self.count += len(part)
 
     def nbytes(self) -> int:
-        return self.count * (self.row_bytes() + SORT_OVERHEAD)
+        return self.count * (_row_bytes(self.columns, self.nullable) + SORT_OVERHEAD)
 
-    def drain(self) -> Iterator[tuple[np.ndarray, dict, dict]]:
-        """Hand the parts over one by one, freeing each (used when switching to the spill store)."""
-        while self.parts:
-            yield self.parts.pop(0)
-
-    def buckets(self, budget: int) -> Iterator[Bucket]:
+    def buckets(self, budget: int) -> Iterator[list[Part]]:
         parts, self.parts = self.parts, []
-        if not parts:
-            return
-        keys = np.concatenate([p[0] for p in parts])
-        # one column at a time, dropping its parts, so the copy never doubles the whole scan
-        values = {c.name: np.concatenate([p[1].pop(c.name) for p in parts]) for c in self.columns}
-        valid = {
-            name: np.concatenate([p[2].pop(name, None) if name in p[2] else np.ones(len(p[0]), np.uint8) for p in parts])
-            for name in self.nullable
-        }
-        del parts
-        yield Bucket(keys, np.arange(len(keys), dtype=np.int64), values, valid)
+        yield parts
 
 
-class _SpillStore(_Store):
-    """Sorted runs, one per chunk, appended to one file per column."""
+def _row_bytes(columns: list[_Column], nullable: set[str]) -> int:
+    return sum(c.dtype.itemsize for c in columns) + len(nullable) + 12  # + key and arrival index
+
+
+class _SpillStore:
+    """Sorted runs, one per chunk, appended to one file per column in `directory`."""
 
     def __init__(self, columns: list[_Column], directory: str, key_dtype: np.dtype, key_bits: int):
-        super().__init__(columns)
+        self.columns = columns
         self.directory = directory
         self.key_dtype = key_dtype
         self.hist_shift = max(0, key_bits - HIST_BITS)
         self.hist = np.zeros(1 << min(key_bits, HIST_BITS), dtype=np.int64)
-        self.runs: list[tuple[int, int]] = []  # (first row in files, length)
+        self.runs: list[tuple[int, int]] = []  # (first row in the files, length)
         self.files: dict[str, object] = {}
-        for name, dtype in self._streams():
+        self.nullable: set[str] = set()
+        self.count = 0
+        for name in ["__key", "__row"] + [c.name for c in columns]:
             self._open(name)
 
-    def _streams(self) -> list[tuple[str, np.dtype]]:
-        streams = [("__key", self.key_dtype), ("__row", np.dtype(np.int64))]
-        streams += [(c.name, c.dtype) for c in self.columns]
-        return streams + [(f"__valid.{n}", np.dtype(np.uint8)) for n in sorted(self.nullable)]
-
-    def _path(self, name: str) -> str:
-        return os.path.join(self.directory, f"{len(self.files):03d}.bin")
-
     def _open(self, name: str) -> None:
-        self.files[name] = open(self._path(name), "w+b")
+        self.files[name] = open(os.path.join(self.directory, f"{len(self.files):03d}.bin"), "w+b")
 
-    def add(self, keys: np.ndarray, values: dict, valid: dict, rows: np.ndarray) -> None:
-        for name in set(valid) - self.nullable:  # first nulls in this column: earlier rows were valid
+    def add(self, part: Part, first_row: int) -> None:
+        for name in sorted(set(part.valid) - self.nullable):  # first nulls: earlier rows were all valid
             self.nullable.add(name)
             self._open(f"__valid.{name}")
             ones = np.ones(1 << 20, np.uint8)
             for start in range(0, self.count, ones.size):
                 self.files[f"__valid.{name}"].write(ones[: min(ones.size, self.count - start)].data)
-        order = _packed_order(keys)
-        keys = keys[order]
-        self.hist += np.bincount((keys >> self.hist_shift).astype(np.int64), minlength=self.hist.size)
+        order = _packed_order(part.keys)
+        keys = part.keys[order]
+        self.hist += np.bincount((keys >> self.hist_shift).astype(np.intp), minlength=self.hist.size)
         self._write("__key", keys.astype(self.key_dtype, copy=False))
-        self._write("__row", rows[order])
+        self._write("__row", order.astype(np.int64) + first_row)
         for c in self.columns:
-            self._write(c.name, values[c.name][order])
+            self._write(c.name, part.values[c.name][order])
         for name in self.nullable:
-            v = valid.get(name)
+            v = part.valid.get(name)
             self._write(f"__valid.{name}", np.ones(len(keys), np.uint8) if v is None else v[order])
         self.runs.append((self.count, len(keys)))
         self.count += len(keys)
@@ -199,28 +200,30 @@ class _SpillStore(_Store):
             pos += nbytes
         return out
 
-    def buckets(self, budget: int) -> Iterator[Bucket]:
+    def buckets(self, budget: int) -> Iterator[list[Part]]:
+        """Key ranges cut from the histogram so each bucket fits `budget`; each run gives one segment."""
         for f in self.files.values():
             f.flush()
-        keys_map = np.memmap(self.files["__key"].name, dtype=self.key_dtype, mode="r") if self.count else None
-        target = max(1, budget // (self.row_bytes() + SORT_OVERHEAD))
+        if not self.count:
+            return
+        keys_map = np.memmap(self.files["__key"].name, dtype=self.key_dtype, mode="r")
+        target = max(1, budget // (_row_bytes(self.columns, self.nullable) + SORT_OVERHEAD))
         for lo, hi in _cut(self.hist, target):
-            klo, khi = lo << self.hist_shift, hi << self.hist_shift
             segments = []
             for start, length in self.runs:
                 run = keys_map[start : start + length]
-                a, b = np.searchsorted(run, [klo, khi]) if hi < self.hist.size else (np.searchsorted(run, klo), length)
+                a = int(np.searchsorted(run, lo << self.hist_shift))
+                b = int(np.searchsorted(run, hi << self.hist_shift)) if hi < self.hist.size else length
                 if b > a:
-                    segments.append((start + int(a), int(b - a)))
+                    segments.append((start + a, b - a))
             total = sum(n for _, n in segments)
-            if not total:
-                continue
-            yield Bucket(
-                self._read("__key", self.key_dtype, segments, total).astype(np.uint64),
-                self._read("__row", np.dtype(np.int64), segments, total),
-                {c.name: self._read(c.name, c.dtype, segments, total) for c in self.columns},
-                {n: self._read(f"__valid.{n}", np.dtype(np.uint8), segments, total) for n in self.nullable},
-            )
+            if total:
+                yield [Part(
+                    self._read("__key", self.key_dtype, segments, total),
+                    {c.name: self._read(c.name, c.dtype, segments, total) for c in self.columns},
+                    {n: self._read(f"__valid.{n}", np.dtype(np.uint8), segments, total) for n in self.nullable},
+                    self._read("__row", np.dtype(np.int64), segments, total),
+                )]
         del keys_map
 
     def close(self) -> None:
@@ -243,53 +246,91 @@ def _cut(hist: np.ndarray, target: int) -> list[tuple[int, int]]:
 
 
 def _packed_order(keys: np.ndarray) -> np.ndarray:
-    """Stable argsort of keys: sort (key << b | position) as one uint64, which is several times
-    faster than np.argsort; falls back to a stable argsort when the key is too wide to pack."""
+    """Stable argsort of non-negative integer keys by sorting (key << b | position) as one uint64,
+    several times faster than np.argsort; falls back to a stable argsort when it cannot pack."""
     n = len(keys)
     bits = max(1, int(n - 1).bit_length())
     if n and int(keys.max()).bit_length() + bits <= 64:
         packed = (keys.astype(np.uint64) << np.uint64(bits)) | np.arange(n, dtype=np.uint64)
         packed.sort()
         packed &= np.uint64((1 << bits) - 1)
-        return packed.astype(np.int64)
+        return packed.astype(np.intp)
     return np.argsort(keys, kind="stable")
 
 
-def _emit_groups(buckets: Iterable[Bucket], columns: list[_Column], nullable: set[str], row_group_size: int, scan_order: bool) -> Iterator[pa.Table]:
-    """Sort each bucket and cut row groups; the tail of a bucket is carried into the next one."""
-    carry: Bucket | None = None
+def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
+    """Row group number (rank // size in (key, position) order) of every row, without a full sort.
+
+    Keys are binned into at most 2^20 bins; a bin whose rank range lies inside one group gives all
+    its rows that group, and only the rows of the few bins that straddle a group boundary are
+    sorted. Counting-sorting rows by group (arrow's stable sort) then gives each group's rows in
+    position order.
+    """
+    kmin = min(int(p.keys.min()) for p in parts if len(p))
+    kmax = max(int(p.keys.max()) for p in parts if len(p))
+    shift = max(0, (kmax - kmin).bit_length() - BIN_BITS)
+    bins = [((p.keys - p.keys.dtype.type(kmin)) >> shift).astype(np.int32) for p in parts]
+    count = sum(np.bincount(b, minlength=((kmax - kmin) >> shift) + 1) for b in bins)
+    after = np.cumsum(count)
+    before = after - count
+    first = before // size
+    straddle = (count > 0) & (first != (after - 1) // size)
+    dtype = np.uint16 if after[-1] // size < 2**16 - 1 else np.uint32
+    group = np.concatenate([first.astype(dtype)[b] for b in bins])
+    if straddle.any():
+        starts = np.cumsum([0] + [len(p) for p in parts])
+        hits = [np.flatnonzero(straddle[b]) for b in bins]
+        pos = np.concatenate([h + s for h, s in zip(hits, starts)])
+        keys = np.concatenate([p.keys[h] for p, h in zip(parts, hits)])
+        order = np.argsort(keys, kind="stable")  # positions ascend, so ties keep arrival order
+        pos, keys = pos[order], keys[order]
+        sub_bins = ((keys - keys.dtype.type(kmin)) >> shift).astype(np.int64)
+        within = np.arange(len(pos)) - np.searchsorted(sub_bins, sub_bins, side="left")
+        group[pos] = (before[sub_bins] + within) // size
+    return group
+
+
+def _gather(parts: list[Part], starts: np.ndarray, idx: np.ndarray, nullable: set[str]) -> Part:
+    """Rows at ascending global positions `idx` of the concatenation of `parts`."""
+    if len(parts) == 1:
+        return parts[0].take(idx)
+    cuts = np.searchsorted(idx, starts)
+    pieces = [p.take(idx[a:b] - s) for p, s, a, b in zip(parts, starts, cuts[:-1], cuts[1:]) if b > a]
+    return _concat(pieces, nullable)
+
+
+def _emit_groups(
+    buckets: Iterable[list[Part]], columns: list[_Column], nullable: set[str], size: int, scan_order: bool
+) -> Iterator[pa.Table]:
+    """Cut each bucket into row groups of `size` rows; a bucket's last, partial group is carried
+    into the next bucket (its keys are all lower), so only the file's last group is short."""
     schema = pa.schema([pa.field(c.name, c.type) for c in columns])
-    for bucket in buckets:
-        if carry is not None:
-            bucket = _concat(carry, bucket, nullable)
-        order = _packed_order(bucket.keys)
-        n = len(order)
-        full = n - n % row_group_size
-        for start in range(0, full, row_group_size):
-            yield _gather(bucket, order[start : start + row_group_size], columns, nullable, schema, scan_order)
-        rest = order[full:]
-        carry = _take(bucket, np.sort(rest), nullable) if len(rest) else None
+    carry: Part | None = None
+    for parts in buckets:
+        if parts and parts[0].rows is not None:  # spill: one part; bring it (and the carry) to arrival order
+            part = _concat([carry, parts[0]], nullable) if carry is not None else parts[0]
+            part.permute(_packed_order(part.rows - part.rows.min()))
+            parts, carry = [part], None
+        parts = [p for p in parts if len(p)]
+        if not parts:
+            continue
+        group = _group_of_rows(parts, size)
+        order = pc.array_sort_indices(pa.array(group)).to_numpy().view(np.int64)
+        del group
+        starts = np.cumsum([0] + [len(p) for p in parts])
+        full = len(order) // size * size
+        for start in range(0, full, size):
+            yield _table(_gather(parts, starts, order[start : start + size], nullable), columns, schema, scan_order)
+        if full < len(order):
+            carry = _gather(parts, starts, order[full:], nullable)
     if carry is not None:
-        yield _gather(carry, _packed_order(carry.keys), columns, nullable, schema, scan_order)
+        yield _table(carry, columns, schema, scan_order)
 
 
-def _concat(a: Bucket, b: Bucket, nullable: set[str]) -> Bucket:
-    return Bucket(
-        np.concatenate([a.keys, b.keys]),
-        np.concatenate([a.rows, b.rows]),
-        {k: np.concatenate([a.values[k], b.values[k]]) for k in b.values},
-        {k: np.concatenate([a.valid.get(k, np.ones(len(a.keys), np.uint8)), b.valid[k]]) for k in nullable},
-    )
-
-
-def _take(b: Bucket, idx: np.ndarray, nullable: set[str]) -> Bucket:
-    return Bucket(b.keys[idx], b.rows[idx], {k: v[idx] for k, v in b.values.items()}, {k: b.valid[k][idx] for k in nullable})
-
-
-def _gather(b: Bucket, idx: np.ndarray, columns: list[_Column], nullable: set[str], schema: pa.Schema, scan_order: bool) -> pa.Table:
-    if scan_order:  # same rows, arrival order: sort by the (unique) arrival index
-        idx = idx[_packed_order(b.rows[idx])]
-    arrays = [c.to_arrow(b.values[c.name][idx], b.valid[c.name][idx] if c.name in nullable else None) for c in columns]
+def _table(part: Part, columns: list[_Column], schema: pa.Schema, scan_order: bool) -> pa.Table:
+    if not scan_order:
+        part = part.take(_packed_order(part.keys))
+    arrays = [c.to_arrow(part.values[c.name], part.valid.get(c.name)) for c in columns]
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
@@ -304,7 +345,7 @@ def sorted_row_groups(
 ) -> Iterator[pa.Table]:
     """Yield the points of `chunks` as row-group tables in Hilbert order of (x, y) on `grid`.
 
-    Memory stays near `memory_budget` whatever the scan's size (the chunks themselves must each fit).
+    Memory stays near `memory_budget` whatever the scan's size (each chunk itself must fit).
     Spill files live in a fresh folder under `spill_dir` (default: the system temp folder) and are
     removed when the generator finishes or is closed, also on error.
     """
@@ -326,23 +367,23 @@ def sorted_row_groups(
     tmp: str | None = None
     try:
         rows = 0
-        for chunk in _chain(first, it):
+        for chunk in itertools.chain([first], it):
             if not chunk.schema.equals(schema):
-                raise ValueError(f"chunk {rows}.. has schema {chunk.schema}, expected {schema}")
-            chunk = chunk.combine_chunks()
-            keys, values, valid = _split(chunk, columns, grid)
+                raise ValueError(f"chunk at row {rows} has schema {chunk.schema}, expected {schema}")
+            part = _part(chunk.combine_chunks(), columns, grid, key_dtype)
             if spill is None:
-                memory.add(keys, values, valid)
+                memory.add(part)
                 if memory.nbytes() > memory_budget:
                     tmp = tempfile.mkdtemp(prefix=".scanshelf-spill-", dir=spill_dir)
                     spill = _SpillStore(columns, tmp, key_dtype, key_bits)
                     first_row = 0
-                    for k, v, m in memory.drain():
-                        spill.add(k, v, m, np.arange(first_row, first_row + len(k), dtype=np.int64))
-                        first_row += len(k)
+                    while memory.parts:
+                        held = memory.parts.pop(0)
+                        spill.add(held, first_row)
+                        first_row += len(held)
             else:
-                spill.add(keys, values, valid, np.arange(rows, rows + len(keys), dtype=np.int64))
-            rows += len(keys)
+                spill.add(part, rows)
+            rows += len(part)
         store = memory if spill is None else spill
         yield from _emit_groups(store.buckets(memory_budget), columns, store.nullable, row_group_size, scan_order)
     finally:
@@ -352,16 +393,12 @@ def sorted_row_groups(
             shutil.rmtree(tmp, ignore_errors=True)
 
 
-def _chain(first: pa.Table, rest: Iterator[pa.Table]) -> Iterator[pa.Table]:
-    yield first
-    yield from rest
-
-
-def _split(chunk: pa.Table, columns: list[_Column], grid: SiteGrid) -> tuple[np.ndarray, dict, dict]:
+def _part(chunk: pa.Table, columns: list[_Column], grid: SiteGrid, key_dtype: np.dtype) -> Part:
     values: dict[str, np.ndarray] = {}
     valid: dict[str, np.ndarray] = {}
     for c in columns:
-        v, m = c.to_numpy(chunk.column(c.name).chunk(0) if chunk.num_rows else pa.array([], c.type))
+        column = chunk.column(c.name)
+        v, m = c.to_numpy(column.chunk(0) if column.num_chunks else pa.array([], c.type))
         values[c.name] = v
         if m is not None:
             valid[c.name] = m
@@ -370,4 +407,4 @@ def _split(chunk: pa.Table, columns: list[_Column], grid: SiteGrid) -> tuple[np.
         keys = grid.keys_of_units(values["x"], values["y"], places_x)
     else:
         keys = grid.keys(values["x"] * 10.0**-places_x, values["y"] * 10.0**-places_y)
-    return keys, values, valid
+    return Part(keys.astype(key_dtype), values, valid)

@@ -34,11 +34,11 @@ class Encoding:
     """Parquet encoding choices; the defaults are the measured best (see benchmarks/points.py)."""
 
     compression: str = "zstd"
-    compression_level: int = 1
+    compression_level: int | None = 1
     coordinates: str = "DELTA_BINARY_PACKED"  # x, y, z (INT64 decimals)
     floats: str = "BYTE_STREAM_SPLIT"
-    integers: str | None = None  # other integer columns; None = PLAIN
-    dictionary_enums: bool = False  # dictionary-encode 8-bit and boolean columns
+    integers: str | None = "DELTA_BINARY_PACKED"  # other integer columns; None = PLAIN
+    dictionary_enums: bool = True  # dictionary-encode 8-bit and boolean columns
 
     def writer_options(self, schema: pa.Schema) -> dict:
         encodings: dict[str, str] = {}
@@ -107,29 +107,27 @@ def write_scan(
     stats: dict[str, _Moments] = {}
     rows = count = 0
     writer: pq.ParquetWriter | None = None
-    try:
-        with fsspec.open(dest, "wb", **(storage_options or {})) as raw:
-            sink = _HashingSink(raw)
+    with fsspec.open(dest, "wb", **(storage_options or {})) as raw:
+        sink = _HashingSink(raw)
+        try:
             for table in groups:
                 if writer is None:
                     schema = table.schema.with_metadata(_metadata(metadata, grid, row_group_size, scan_order))
                     writer = pq.ParquetWriter(sink, schema, **encoding.writer_options(schema))
                     stats = {f.name: _Moments() for f in schema if _has_moments(f)}
-                writer.write_table(table.replace_schema_metadata(writer.schema.metadata), row_group_size=len(table))
+                writer.write_table(table, row_group_size=len(table))
                 for name, m in stats.items():
                     m.add(_values(table.column(name)))
                 rows += len(table)
                 count += 1
                 if on_sorted is not None:
                     on_sorted(table)
-            if writer is None:
-                raise ValueError(f"no points to write to {dest}: the scan is empty")
-            writer.close()
-            writer = None
-    finally:
-        groups.close()
-        if writer is not None:
-            writer.close()
+        finally:
+            groups.close()  # removes spill files, also on error
+            if writer is not None:
+                writer.close()  # on error the caller discards the file; closing keeps `raw` consistent
+    if writer is None:
+        raise ValueError(f"no points to write to {dest}: the scan is empty")
     columns = tuple(_column_info(f, stats.get(f.name)) for f in schema)
     info = {c.name: c for c in columns}
     bbox = tuple(info[a].minimum for a in COORDS) + tuple(info[a].maximum for a in COORDS)
@@ -183,7 +181,7 @@ class _HashingSink(io.RawIOBase):
 
 
 class _Moments:
-    """Count, min, max, mean and M2 merged across row groups (Chan et al. pairwise update)."""
+    """Count, min, max, mean and M2 merged across row groups (pairwise update of Chan et al.)."""
 
     def __init__(self) -> None:
         self.n, self.min, self.max, self.mean, self.m2 = 0, math.inf, -math.inf, 0.0, 0.0
@@ -191,16 +189,18 @@ class _Moments:
     def add(self, v: np.ndarray) -> None:
         if not v.size:
             return
-        n = v.size
-        mean = float(v.mean(dtype=np.float64))
-        m2 = float(np.square(v - mean, dtype=np.float64).sum())
+        d = v.astype(np.float64)
+        n = d.size
+        mean = float(d.sum()) / n
+        mn, mx = float(d.min()), float(d.max())
+        d -= mean
+        m2 = float(np.einsum("i,i->", d, d))  # BLAS dot can be far slower on some CPUs
         delta = mean - self.mean
         total = self.n + n
         self.mean += delta * n / total
         self.m2 += m2 + delta * delta * self.n * n / total
         self.n = total
-        self.min = min(self.min, float(v.min()))
-        self.max = max(self.max, float(v.max()))
+        self.min, self.max = min(self.min, mn), max(self.max, mx)
 
 
 def _has_moments(field: pa.Field) -> bool:
@@ -209,9 +209,16 @@ def _has_moments(field: pa.Field) -> bool:
 
 
 def _values(column: pa.ChunkedArray) -> np.ndarray:
+    """Values for statistics without copying: decimals as a strided view of their low words."""
     if pa.types.is_decimal(column.type):
-        return units_of(column)
+        parts = []
+        for a in column.chunks:
+            words = np.frombuffer(a.buffers()[1], dtype=np.int64)
+            parts.append(words[2 * a.offset : 2 * (a.offset + len(a)) : 2])
+        return parts[0] if len(parts) == 1 else np.concatenate(parts)
     column = column.drop_null() if column.null_count else column
+    if pa.types.is_boolean(column.type):
+        return column.to_numpy(zero_copy_only=False).astype(np.uint8)
     return column.to_numpy()
 
 

@@ -173,7 +173,10 @@ class Scans:
             tables = list(pool.map(one, self._scans))
         if not tables:
             return pa.table({"scan_id": pa.array([], pa.string())})
-        return pa.concat_tables(tables, promote_options="permissive")
+        # per-file metadata (axes, CRS) describes one scan, not the union
+        return pa.concat_tables(
+            [t.replace_schema_metadata(None) for t in tables], promote_options="permissive"
+        )
 
     def to_dask(
         self,

@@ -1,0 +1,82 @@
+"""catalog_schema/: our JSON Schemas are valid draft 2020-12 and say what they are."""
+
+from __future__ import annotations
+
+import json
+import re
+import tomllib
+from pathlib import Path
+
+import jsonschema
+import pytest
+
+from archive.catalog import extensions as ext
+from archive.recipe import parse_recipe
+
+ROOT = Path(__file__).resolve().parents[1]
+SCHEMAS = sorted((ROOT / "catalog_schema").rglob("*.json"))
+
+
+def _load(path: Path) -> dict:
+    return json.loads(path.read_text())
+
+
+@pytest.mark.parametrize("path", SCHEMAS, ids=lambda p: str(p.relative_to(ROOT)))
+def test_schema_is_valid_draft_2020_12_with_versioned_id(path: Path) -> None:
+    # reference: JSON Schema draft 2020-12 meta-schema (as bundled with the jsonschema package)
+    schema = _load(path)
+    assert schema["$schema"] == "https://json-schema.org/draft/2020-12/schema"
+    jsonschema.Draft202012Validator.check_schema(schema)
+    assert re.search(r"[/-]v\d+(\.\d+)*[/.]", schema["$id"]), "the $id carries a version"
+
+
+def test_every_extension_we_emit_has_a_local_rendering() -> None:
+    assert len(SCHEMAS) == len(ext.LOCAL_SCHEMAS) + 1  # + the recipe schema
+    for url, rel in ext.LOCAL_SCHEMAS.items():
+        schema = _load(ext.local_schema_path(url))
+        if url == ext.SCANSHELF:
+            assert schema["$id"] == url
+        else:
+            assert "rendering" in schema["$comment"] and url in schema["$comment"]
+            assert not schema["$id"].startswith("https://stac-extensions.github.io/"), rel
+
+
+def test_own_schema_rejects_bad_values() -> None:
+    validator = jsonschema.Draft202012Validator(_load(ext.local_schema_path(ext.SCANSHELF)))
+    good = {
+        "type": "Feature",
+        "stac_extensions": [ext.SCANSHELF],
+        "properties": {
+            "scanshelf:station": "north",
+            "scanshelf:duration": 12.5,
+            "scanshelf:source_path": "north/a.las",
+            "scanshelf:source_checksum": "1220" + "ab" * 32,
+            "scanshelf:partial": False,
+        },
+        "assets": {},
+        "links": [],
+    }
+    assert not list(validator.iter_errors(good))
+    for key, value in (
+        ("scanshelf:duration", -1),
+        ("scanshelf:source_checksum", "ab" * 32),  # no multihash prefix
+        ("scanshelf:station", "north cam"),  # not a plain id
+        ("scanshelf:scanner_origin", [1.0, 2.0]),
+    ):
+        bad = json.loads(json.dumps(good))
+        bad["properties"][key] = value
+        assert list(validator.iter_errors(bad)), key
+    missing = json.loads(json.dumps(good))
+    del missing["properties"]["scanshelf:source_path"]
+    assert list(validator.iter_errors(missing))
+
+
+def test_example_recipe_matches_recipe_schema() -> None:
+    schema = _load(ROOT / "catalog_schema" / "recipe.schema.json")
+    data = tomllib.loads((ROOT / "examples" / "recipe.toml").read_text())
+    validator = jsonschema.Draft202012Validator(schema)
+    assert not list(validator.iter_errors(data))
+    parse_recipe(data, "examples/recipe.toml")  # the lead's loader accepts the same file
+    for bad in ({"grids": {"cell": 0}}, {"paths": {"station": "^([^/]+)/"}}, {"colour": "red"},
+                {"catalog": {"providers": [{"roles": ["producer"]}]}}):
+        assert list(validator.iter_errors(bad)), bad

@@ -1,0 +1,117 @@
+"""extract and find from the command line; LAS/LAZ output checked with laspy."""
+
+from __future__ import annotations
+
+import json
+
+import duckdb
+import laspy
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pcsv
+import pyarrow.parquet as pq
+import pytest
+from click.testing import CliRunner
+
+from archive.cli.query import extract as extract_command
+from archive.cli.query import find as find_command
+from archive.points.coords import AxisEncoding, units_of
+from archive.query import open_shelf
+from archive.query.export import extract
+from tests.servers import BOX, CRS_CODE, shelf_dir  # noqa: F401 (fixtures)
+
+
+def duckdb_count(paths, box) -> int:
+    # reference: DuckDB's own Parquet reader and SQL filter
+    return duckdb.execute(
+        "SELECT count(*) FROM read_parquet(?) WHERE x BETWEEN ? AND ? AND y BETWEEN ? AND ?",
+        [[str(p) for p in paths], box[0], box[2], box[1], box[3]],
+    ).fetchone()[0]
+
+
+def test_las_integers_round_trip(shelf_dir, tmp_path):
+    root, scans = shelf_dir
+    out = tmp_path / "north.las"
+    result = extract(str(root), str(out), BOX, station="north", end="2026-03-01")
+    las = laspy.read(out)  # reference: laspy, an independent LAS reader
+    assert las.header.version.minor == 4 and las.header.point_format.id == 6
+    assert las.header.parse_crs().to_epsg() == int(CRS_CODE.split(":")[1])
+    assert len(las.points) == result.points == duckdb_count([scans[0]["path"]], BOX)
+    axes = scans[0]["axes"]
+    np.testing.assert_array_equal(las.header.scales, [axes[a]["scale"] for a in "xyz"])
+    np.testing.assert_array_equal(las.header.offsets, [axes[a]["offset"] for a in "xyz"])
+    exact = open_shelf(str(root)).find(bbox=BOX, station="north", end="2026-03-01").read_points(exact=True)
+    order = np.lexsort((units_of(exact["y"]), units_of(exact["x"])))
+    mine = np.lexsort((np.asarray(las.Y), np.asarray(las.X)))
+    for axis, ints in (("x", las.X), ("y", las.Y), ("z", las.Z)):
+        enc = AxisEncoding.from_dict(axes[axis])
+        raw = (units_of(exact[axis]) - enc._shift) // enc._step  # the scanner's own integers
+        np.testing.assert_array_equal(np.asarray(ints)[mine], raw[order])
+    np.testing.assert_array_equal(np.asarray(las.intensity)[mine], exact["intensity"].to_numpy()[order])
+
+
+def test_laz_of_mixed_scans(shelf_dir, tmp_path):
+    root, scans = shelf_dir
+    out = tmp_path / "all.laz"
+    result = extract(str(root), str(out), BOX, columns=["intensity", "gps_time"])
+    las = laspy.read(out)  # reference: laspy with the lazrs backend
+    assert las.header.are_points_compressed
+    assert len(las.points) == result.points == duckdb_count([s["path"] for s in scans], BOX)
+    assert result.scans == 3
+    # every coordinate is an exact decimal at the millimetre: X * 0.001 + offset reproduces it
+    x = np.asarray(las.X, np.int64) + round(las.header.offsets[0] / las.header.scales[0])
+    got = sorted(x.tolist())
+    want = duckdb.execute(
+        "SELECT (x * 1000)::BIGINT FROM read_parquet(?) WHERE x BETWEEN ? AND ? AND y BETWEEN ? AND ? ORDER BY 1",
+        [[str(s["path"]) for s in scans], BOX[0], BOX[2], BOX[1], BOX[3]],
+    ).fetchall()
+    assert got == [w[0] for w in want]
+
+
+def test_parquet_and_csv_keep_exact_decimals(shelf_dir, tmp_path):
+    root, scans = shelf_dir
+    pq_out, csv_out = tmp_path / "cut.parquet", tmp_path / "cut.csv"
+    extract(str(root), str(pq_out), BOX, columns=["classification"])
+    extract(str(root), str(csv_out), BOX, columns=["classification"])
+    table = pq.read_table(pq_out)
+    assert pa.types.is_decimal(table["x"].type)
+    assert table.column_names == ["x", "y", "z", "classification", "scan_id"]
+    assert table.num_rows == duckdb_count([s["path"] for s in scans], BOX)
+    text = pcsv.read_csv(csv_out, convert_options=pcsv.ConvertOptions(column_types={"x": pa.string()}))
+    assert sorted(text["x"].to_pylist()) == sorted(table["x"].cast(pa.string()).to_pylist())
+    assert all(len(v.split(".")[1]) == 3 for v in text["x"].to_pylist()[:50])
+
+
+def test_extract_refuses_unknown_types_and_empty_windows(shelf_dir, tmp_path):
+    root, _ = shelf_dir
+    with pytest.raises(ValueError, match="unknown output type"):
+        extract(str(root), str(tmp_path / "x.xyz"), BOX)
+    with pytest.raises(ValueError, match="no points inside"):
+        extract(str(root), str(tmp_path / "x.las"), (0, 0, 1, 1))
+    assert list(tmp_path.iterdir()) == []  # nothing half-written
+
+
+def test_find_command(shelf_dir):
+    root, _ = shelf_dir
+    runner = CliRunner()
+    table = runner.invoke(find_command, [str(root), "--station", "north"])
+    assert table.exit_code == 0, table.output
+    assert "north-20260301T060000Z" in table.output and "south" not in table.output.split("\n")[1]
+    as_json = runner.invoke(find_command, [str(root), "--bbox", *map(str, BOX), "--start", "2026-03-02", "--json"])
+    assert as_json.exit_code == 0, as_json.output
+    items = json.loads(as_json.stdout)
+    assert [i["id"] for i in items] == ["south-20260304T123000Z", "north-20260308T060000Z"]
+
+
+def test_extract_command(shelf_dir, tmp_path):
+    root, scans = shelf_dir
+    out = tmp_path / "cut.las"
+    result = CliRunner().invoke(
+        extract_command,
+        [str(root), "--bbox", *map(str, BOX), "--columns", "intensity", "-o", str(out)],
+    )
+    assert result.exit_code == 0, result.output
+    assert "bytes fetched" in result.output
+    assert len(laspy.read(out).points) == duckdb_count([s["path"] for s in scans], BOX)
+    missing = CliRunner().invoke(extract_command, [str(root), "-o", str(tmp_path / "a.las")])
+    assert missing.exit_code != 0 and "--bbox" in missing.output
