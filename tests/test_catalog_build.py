@@ -518,3 +518,17 @@ def test_unlinked_item_file_is_reported(shelf) -> None:
     stray.write_text("{}")
     report = verify_shelf(str(root), quick=True)
     assert report.problems == ["scans/items/west/west-20260101T000000Z.json: Item file not linked from scans/collection.json"]
+
+
+def test_search_index_by_area_time_and_station(shelf) -> None:
+    from archive.catalog.index import search_index
+    from archive.catalog.store import Shelf
+
+    root, records, _ = shelf
+    s = Shelf(str(root))
+    everywhere = (-180.0, -90.0, 180.0, 90.0)
+    assert sorted(search_index(s, everywhere)) == sorted(r.scan_id for r in records)
+    week2 = search_index(s, everywhere, T0 + timedelta(days=3), T0 + timedelta(days=10))
+    assert week2 == [records[1].scan_id]
+    assert search_index(s, station="south") == [records[2].scan_id]
+    assert search_index(s, (0.0, 0.0, 1.0, 1.0)) == []  # far from the site

@@ -135,7 +135,8 @@ def ingest_grid(
     """
     check_station(station)
     fmt = grid_format(path_or_url)
-    with local_copy(path_or_url, storage_options) as local:
+    fs, path = fsspec.core.url_to_fs(path_or_url, **(storage_options or {}))
+    with local_copy(fs, path) as local:
         try:
             ds = open_grid(local, fmt)
         except Exception as e:

@@ -12,7 +12,7 @@ import re
 import shutil
 import tempfile
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import datetime, timezone
 from pathlib import PurePosixPath
 from typing import Iterator
 
@@ -39,12 +39,13 @@ class GridProbe:
     path: str
     format: str  # "geotiff", "netcdf", "aaigrid"
     crs_wkt: str | None
+    crs_source: str | None  # "file", "recipe" (rule or site CRS) or None
     shape: tuple[int, int]  # (rows, cols)
     transform: tuple[float, float, float, float, float, float]  # GDAL order: x0, dx, rx, y0, ry, dy
     bounds: tuple[float, float, float, float]  # xmin, ymin, xmax, ymax
     variables: tuple[str, ...]  # band descriptions or NetCDF variable names
     product: str  # "dem", "displacement", "strain"
-    time: datetime | None  # naive stamp from the file name, in the recipe's time zone
+    time: datetime | None  # UTC, from a stamp in the file name
 
 
 def grid_format(path: str) -> str:
@@ -81,9 +82,11 @@ def guess_product(path: str, variables: tuple[str, ...]) -> str:
 
 
 @contextlib.contextmanager
-def local_copy(url: str, storage_options: dict | None = None) -> Iterator[str]:
-    """A local path for ``url``: itself when local, else a temporary copy with its sidecars."""
-    fs, path = fsspec.core.url_to_fs(url, **(storage_options or {}))
+def local_copy(fs: fsspec.AbstractFileSystem, path: str) -> Iterator[str]:
+    """A local path for ``path`` on ``fs``: itself when local, else a temporary copy with sidecars.
+
+    GDAL finds an ESRI ASCII grid's CRS in its ``.prj`` beside it, so sidecars travel too.
+    """
     if "file" in (fs.protocol if isinstance(fs.protocol, tuple) else (fs.protocol,)):
         yield path
         return
@@ -130,25 +133,43 @@ def open_grid(local_path: str, fmt: str) -> xr.Dataset:
     return ds
 
 
-def probe_grid(url: str, storage_options: dict | None = None) -> GridProbe:
-    """Format, CRS (or None), shape, transform, bounds, product guess and name stamp of a grid."""
-    fmt = grid_format(url)
-    with local_copy(url, storage_options) as local:
+def probe_grid(fs: fsspec.AbstractFileSystem, path: str, relpath: str | None = None, recipe=None) -> GridProbe:
+    """Format, CRS (or None), shape, transform, bounds, product guess and name stamp of a grid.
+
+    ``relpath`` names the file in messages and is matched against the recipe's
+    ``[[grids.files]]`` rules; a rule's (else the site's) CRS fills in a missing CRS
+    (``crs_source = "recipe"``) and its product overrides the guess. The name stamp is read in
+    the recipe's time zone and returned in UTC.
+    """
+    name = relpath or path
+    fmt = grid_format(path)
+    with local_copy(fs, path) as local:
         try:
             ds = open_grid(local, fmt)
         except Exception as e:  # rasterio/h5netcdf errors carry no file name
-            raise ValueError(f"{url}: cannot read as {fmt} grid ({e})") from e
+            raise ValueError(f"{name}: cannot read as {fmt} grid ({e})") from e
+    rule = recipe.grid_rule(name) if recipe is not None else None
     crs = ds.rio.crs
-    t = ds.rio.transform()
+    crs_wkt, crs_source = (crs.to_wkt(), "file") if crs is not None else (None, None)
+    fallback = (rule.crs if rule else None) or (getattr(recipe, "crs", None) if recipe is not None else None)
+    if crs_wkt is None and fallback:
+        from pyproj import CRS
+
+        crs_wkt, crs_source = CRS.from_user_input(fallback).to_wkt(), "recipe"
     variables = tuple(str(v) for v in ds.data_vars)
+    stamp = time_from_name(name)
+    if stamp is not None:
+        zone = recipe.zone if recipe is not None else timezone.utc
+        stamp = stamp.replace(tzinfo=zone).astimezone(timezone.utc)
     return GridProbe(
-        path=url,
+        path=name,
         format=fmt,
-        crs_wkt=crs.to_wkt() if crs is not None else None,
+        crs_wkt=crs_wkt,
+        crs_source=crs_source,
         shape=(int(ds.rio.height), int(ds.rio.width)),
-        transform=tuple(float(v) for v in t.to_gdal()),
+        transform=tuple(float(v) for v in ds.rio.transform().to_gdal()),
         bounds=tuple(float(v) for v in ds.rio.bounds()),
         variables=variables,
-        product=guess_product(url, variables),
-        time=time_from_name(url),
+        product=(rule.product if rule and rule.product else None) or guess_product(name, variables),
+        time=stamp,
     )
