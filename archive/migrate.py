@@ -16,12 +16,12 @@ from collections import Counter
 from dataclasses import asdict, dataclass, field, replace
 from datetime import datetime
 from pathlib import Path
-from typing import Any, Callable, Iterable
 
 import numpy as np
 import pyarrow.compute as pc
 
 from archive import layout
+from archive.cluster import DEFAULT_MEMORY_PER_WORKER, DaskExecutor, SerialExecutor
 from archive.grids import GridAccumulator, GridSpec, EpochGrid, write_epoch
 from archive.layout import ScanId
 from archive.ledger import Ledger
@@ -37,6 +37,7 @@ from archive.timeutil import adjusted_gps_to_utc
 CHUNK_POINTS = 2_000_000
 MEMORY_BUDGET = 768 * 2**20
 ROW_GROUP_POINTS = 262_144
+WORKER_SORT_SHARE = 0.4  # of a dask worker's memory for the sort; the rest is Arrow buffers and Python
 FOOTPRINT_CELL = 2.0  # metres: coarse occupancy for the catalog outline
 
 
@@ -84,6 +85,7 @@ class MigrateResult:
     points: int = 0  # points converted in this run
     outside_grid: dict[str, int] = field(default_factory=dict)  # scan id -> points outside its station grid
     scans_total: int = 0
+    dashboard: str | None = None  # dask dashboard of a cluster run
 
     @property
     def ok(self) -> bool:
@@ -130,12 +132,17 @@ def migrate(
     chunk_points: int = CHUNK_POINTS,
     memory_budget: int = MEMORY_BUDGET,
     row_group_points: int = ROW_GROUP_POINTS,
-    executor: "Executor | None" = None,
+    workers: int | None = None,
+    scheduler: str | None = None,
+    memory_per_worker: int | None = None,
 ) -> MigrateResult:
     """Convert every scan and grid of ``source`` into the local shelf folder ``shelf``.
 
     Re-running skips what the ledger records as done (same checksum) and finishes the rest;
     a source file whose checksum changed is converted again and replaces its scan.
+    ``workers`` starts a local dask cluster, ``scheduler`` uses a running one (its workers must
+    see ``shelf`` at the same path, e.g. on a shared file system); each worker then keeps its
+    sort within ``memory_per_worker``.
     """
     if not isinstance(recipe, Recipe):
         recipe = load_recipe(recipe, crs)
@@ -150,7 +157,25 @@ def migrate(
     shelf_path.mkdir(parents=True, exist_ok=True)
     _remove_leftovers(shelf_path)
     result = MigrateResult(shelf=str(shelf_path))
-    executor = executor or SerialExecutor()
+    if workers or scheduler:
+        executor = DaskExecutor(workers, scheduler, memory_per_worker or DEFAULT_MEMORY_PER_WORKER)
+        memory_budget = min(memory_budget, int(executor.memory_per_worker * WORKER_SORT_SHARE))
+        result.dashboard = executor.dashboard_link
+        if progress and executor.dashboard_link:
+            print(f"dask dashboard: {executor.dashboard_link}")
+    else:
+        executor = SerialExecutor()
+    try:
+        _run(source, fs, root, shelf_path, recipe, result, executor, salvage=salvage, storage_options=storage_options,
+             progress=progress, previews=previews, catalog=catalog, chunk_points=chunk_points,
+             memory_budget=memory_budget, row_group_points=row_group_points)
+    finally:
+        executor.close()
+    return result
+
+
+def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResult, executor, *, salvage,
+         storage_options, progress, previews, catalog, chunk_points, memory_budget, row_group_points) -> None:
     with Ledger(shelf_path / layout.LEDGER) as ledger:
         reports = _survey(fs, root, recipe, ledger, executor, progress)
         _write_survey(shelf_path, source, reports)
@@ -177,8 +202,10 @@ def migrate(
                 )
             )
         bar = _bar(progress, total=sum(t.report.point_count or 0 for t in tasks), unit="pt", desc="migrate")
-        for outcome in executor.run(convert_scan, tasks):
-            _record_outcome(outcome, next(t for t in tasks if t.report.relpath == outcome.relpath), ledger, result)
+        for task, outcome in executor.run(convert_scan, tasks):
+            if isinstance(outcome, BaseException):
+                outcome = ScanOutcome(task.report.relpath, error=f"failed twice on the cluster: {outcome!r}")
+            _record_outcome(outcome, task, ledger, result)
             bar.update(outcome.record.point_count if outcome.record else 0)
         bar.close()
         _ingest_grids(fs, root, reports, recipe, shelf_path, ledger, result, storage_options)
@@ -188,13 +215,12 @@ def migrate(
             from archive.catalog import build_catalog
 
             build_catalog(str(shelf_path), records, settings=recipe.catalog)
-    return result
 
 
 # --- survey and planning --------------------------------------------------------------------
 
 
-def _survey(fs, root: str, recipe: Recipe, ledger: Ledger, executor: "Executor", progress: bool) -> list[FileReport]:
+def _survey(fs, root: str, recipe: Recipe, ledger: Ledger, executor, progress: bool) -> list[FileReport]:
     """Inspect every file, reusing the ledger's cached inspection of unchanged files."""
     entries = walk_source(fs, root, recipe)
     reports: dict[str, FileReport] = {}
@@ -206,7 +232,12 @@ def _survey(fs, root: str, recipe: Recipe, ledger: Ledger, executor: "Executor",
         else:
             todo.append((path, relpath, size, mtime))
     bar = _bar(progress, total=sum(e[2] for e in todo), unit="B", desc="survey")
-    for report in executor.run(_inspect_task, [(fs, p, r, s, recipe, m) for p, r, s, m in todo]):
+    for (fs_, path, relpath, size, recipe_, mtime), report in executor.run(
+        _inspect_task, [(fs, p, r, s, recipe, m) for p, r, s, m in todo]
+    ):
+        if isinstance(report, BaseException):
+            report = FileReport(relpath=relpath, size=size, kind="points", status="unusable", mtime=mtime,
+                                problems=[f"inspection failed twice: {report!r}"])
         reports[report.relpath] = report
         ledger.save_inspection(report.relpath, report.size, report.mtime, _report_to_json(report))
         bar.update(report.size)
@@ -516,19 +547,3 @@ def _bar(enabled: bool, **kwargs):
     from tqdm.auto import tqdm
 
     return tqdm(disable=not enabled, unit_scale=True, leave=False, **kwargs)
-
-
-# --- execution ----------------------------------------------------------------------------------
-
-
-class Executor:
-    """Runs a function over tasks and yields results as they finish."""
-
-    def run(self, fn: Callable, tasks: Iterable) -> Iterable:  # pragma: no cover - protocol
-        raise NotImplementedError
-
-
-class SerialExecutor(Executor):
-    def run(self, fn: Callable, tasks: Iterable) -> Iterable:
-        for task in tasks:
-            yield fn(task)

@@ -183,7 +183,7 @@ def test_layout_written_and_catalog_last(tmp_path: Path) -> None:
     assert set(result.written) == {
         item_path(ScanId.parse(r.scan_id)) for r in records
     } | {"scans/collection.json", "grids/collection.json", "scans/items.parquet", "catalog.json"}
-    assert not list(root.rglob("*.tmp")), "temporary files left behind"
+    assert not list(root.rglob("*.part-*")), "temporary files left behind"
 
 
 def test_verify_passes_on_fresh_shelf(shelf) -> None:

@@ -25,7 +25,7 @@ GROUP = 2_000
 GRID = SiteGrid.from_bounds(1000.0, 2000.0, 1200.0, 2200.0, order=16)
 
 
-def scan_chunks(n: int = N, chunk: int = CHUNK, seed: int = 3, fail_at: int | None = None):
+def scan_chunks(n: int = N, chunk: int = CHUNK, seed: int = 3, fail_at: int | None = None, lattice: int = 1):
     """Scan-like chunks: sweep order around a station, exact decimals at 3 places, mixed attributes."""
     for start in range(0, n, chunk):
         if fail_at is not None and start >= fail_at:
@@ -35,8 +35,8 @@ def scan_chunks(n: int = N, chunk: int = CHUNK, seed: int = 3, fail_at: int | No
         i = np.arange(start, start + m)
         az = 2 * np.pi * (i // 300) / (n // 300)
         r = 5 + 80 * ((i % 300) / 300) ** 2 + rng.normal(0, 0.01, m)
-        x = np.rint((1100 + r * np.cos(az)) * 1000).astype(np.int64)
-        y = np.rint((2100 + r * np.sin(az)) * 1000).astype(np.int64)
+        x = np.rint((1100 + r * np.cos(az)) * 1000 / lattice).astype(np.int64) * lattice
+        y = np.rint((2100 + r * np.sin(az)) * 1000 / lattice).astype(np.int64) * lattice
         z = np.rint((50 + 0.1 * r + rng.normal(0, 0.005, m)) * 1000).astype(np.int64)
         deviation = pa.array(rng.integers(-50, 50, m).astype(np.int16), mask=rng.random(m) < 0.1)
         yield pa.table(
@@ -119,6 +119,16 @@ def test_spill_path_writes_the_same_file(tmp_path, memory_file) -> None:
     assert pq.read_table(other).equals(pq.read_table(path))
     assert w.sha256 == written.sha256 and w.size == written.size
     assert os.listdir(spill) == []  # spill files are gone
+
+
+def test_spill_path_breaks_ties_of_equal_keys_like_memory(tmp_path) -> None:
+    # coordinates on a 5 m lattice: thousands of rows share each key, across chunks and buckets
+    paths = [str(tmp_path / f"{b}.parquet") for b in ("memory", "spill")]
+    for path, budget in zip(paths, (2**30, 150_000)):
+        write_scan(scan_chunks(n=30_000, lattice=5000), path, GRID, metadata={}, row_group_size=700, memory_budget=budget)
+    a, b = pq.read_table(paths[0]), pq.read_table(paths[1])
+    assert a.equals(b)
+    assert len(np.unique(GRID.keys_of_units(units_of(a["x"]), units_of(a["y"]), 3))) < 2000
 
 
 def test_spill_files_are_removed_when_a_chunk_fails(tmp_path) -> None:

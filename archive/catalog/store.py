@@ -13,8 +13,7 @@ import posixpath
 import uuid
 from typing import Any
 
-import fsspec
-from fsspec.implementations.local import LocalFileSystem
+from archive.storage import filesystem, is_local
 
 CHUNK = 4 * 1024 * 1024
 MULTIHASH_SHA256 = "1220"  # multihash: code 0x12 (sha2-256), length 0x20 (32 bytes)
@@ -24,7 +23,7 @@ class Shelf:
     """A shelf root on some filesystem; paths given to it are shelf-relative."""
 
     def __init__(self, url: str, storage_options: dict | None = None) -> None:
-        self.fs, root = fsspec.core.url_to_fs(str(url), **(storage_options or {}))
+        self.fs, root = filesystem(url, storage_options)
         self.root = root.rstrip("/")
         self.url = str(url)
 
@@ -47,9 +46,9 @@ class Shelf:
         """Write all of ``data`` so that readers see the old file or the new one, never a part."""
         target = self.path(rel)
         parent = posixpath.dirname(target)
-        if isinstance(self.fs, LocalFileSystem):
+        if is_local(self.fs):
             self.fs.makedirs(parent, exist_ok=True)
-            tmp = f"{parent}/.{posixpath.basename(target)}.{uuid.uuid4().hex}.tmp"
+            tmp = f"{target}.part-{uuid.uuid4().hex[:8]}"
             self.fs.pipe_file(tmp, data)
             self.fs.mv(tmp, target)
         else:

@@ -45,9 +45,14 @@ def survey_command(source, recipe, crs, output, quick, storage_options, quiet) -
 @click.option("--salvage", is_flag=True, help="Convert the readable points of damaged files and mark those scans partial.")
 @click.option("--cell", type=float, help="Grid cell size in metres for the elevation cubes (default: recipe, else 1).")
 @click.option("--no-previews", is_flag=True, help="Do not render a preview PNG per scan.")
+@click.option("--workers", type=click.IntRange(1), help="Run on a local dask cluster with this many worker processes.")
+@click.option("--scheduler", metavar="ADDRESS", help="Run on an existing dask scheduler, e.g. tcp://10.0.0.5:8786.")
+@click.option("--memory-per-worker", default="1.5GiB", show_default=True,
+              help="Memory limit of each local worker; the sort of one scan stays within it.")
 @storage_option
 @quiet_option
-def migrate_command(source, shelf, recipe, crs, salvage, cell, no_previews, storage_options, quiet) -> None:
+def migrate_command(source, shelf, recipe, crs, salvage, cell, no_previews, workers, scheduler, memory_per_worker,
+                    storage_options, quiet) -> None:
     """Convert every scan in SOURCE into the local SHELF folder.
 
     Each scan becomes a spatially sorted Parquet file under points/, its elevation a time step
@@ -55,15 +60,23 @@ def migrate_command(source, shelf, recipe, crs, salvage, cell, no_previews, stor
     are listed at the end and make the exit code 1. Re-running the same command skips what is
     done and finishes the rest; new or changed source files are converted.
 
+    On a cluster, every scan is one dask task; the workers must see SHELF at the same path
+    (a shared file system) and read SOURCE themselves (a shared folder or an fsspec URL).
+
     \b
-    Example:
+    Examples:
       scanshelf migrate /mnt/labserver/tls ./shelf --recipe site.toml
       scanshelf migrate ./demo/source ./shelf --salvage
+      scanshelf migrate /mnt/labserver/tls /scratch/shelf --workers 2 --memory-per-worker 2GiB
+      scanshelf migrate s3://lab-archive/tls /scratch/shelf --scheduler tcp://10.0.0.5:8786
     """
+    from dask.utils import parse_bytes
+
     from archive.migrate import migrate
 
     result = migrate(source, shelf, recipe, crs, salvage=salvage, cell=cell,
                      storage_options=parse_storage_options(storage_options), progress=not quiet,
-                     previews=not no_previews)
+                     previews=not no_previews, workers=workers, scheduler=scheduler,
+                     memory_per_worker=parse_bytes(memory_per_worker))
     click.echo(result.summary())
     sys.exit(0 if result.ok else 1)

@@ -26,14 +26,17 @@ GPS_MINUS_UTC = 18.0
 _STEPS = np.geomspace(8.0, 9000.0, 24)  # ray-marching ranges (m), then bisection
 _BISECTIONS = 9
 
-_REFLECTIVITY = {site.ICE: 0.45, site.ROCK: 0.30, site.SHRUB: 0.50, site.NOISE: 0.10, site.WATER: 0.03}
-_COLOUR = {  # 8-bit RGB of each surface class
-    site.ICE: (196, 214, 228),
-    site.ROCK: (112, 100, 88),
-    site.SHRUB: (86, 112, 58),
-    site.NOISE: (240, 240, 240),
-    site.WATER: (30, 52, 70),
-}
+# reflectivity at the laser's wavelength and 8-bit RGB of each surface class, by LAS class code
+_REFLECTIVITY = np.zeros(16)
+_COLOUR = np.zeros((16, 3))
+for _cls, _rho, _rgb in (
+    (site.ICE, 0.45, (196, 214, 228)),
+    (site.ROCK, 0.30, (112, 100, 88)),
+    (site.SHRUB, 0.50, (86, 112, 58)),
+    (site.NOISE, 0.10, (240, 240, 240)),
+    (site.WATER, 0.03, (30, 52, 70)),
+):
+    _REFLECTIVITY[_cls], _COLOUR[_cls] = _rho, _rgb
 
 
 @dataclass(frozen=True)
@@ -83,10 +86,6 @@ def _plan(station: Station, n_points: int) -> tuple[int, int]:
     return rows, math.ceil(beams / rows)
 
 
-def _height(u: np.ndarray, v: np.ndarray, t: float) -> np.ndarray:
-    return site.surface(u, v, t)[0]
-
-
 def _cast(origin: tuple[float, float, float], d: np.ndarray, t: float) -> np.ndarray:
     """Range to the first surface hit of each ray (NaN when none within the last step)."""
     ou, ov, oz = origin
@@ -98,22 +97,22 @@ def _cast(origin: tuple[float, float, float], d: np.ndarray, t: float) -> np.nda
         if idx.size == 0:
             break
         du, dv, dz = d[:, idx]
-        below = oz + s * dz <= _height(ou + s * du, ov + s * dv, t)
+        below = oz + s * dz <= site.height(ou + s * du, ov + s * dv, t)
         hi[idx[below]] = s
         lo[idx[~below]] = s
     ok = np.isfinite(hi)
     lo, hi, dk = lo[ok], hi[ok], d[:, ok]
     for _ in range(_BISECTIONS):
         mid = 0.5 * (lo + hi)
-        below = oz + mid * dk[2] <= _height(ou + mid * dk[0], ov + mid * dk[1], t)
+        below = oz + mid * dk[2] <= site.height(ou + mid * dk[0], ov + mid * dk[1], t)
         hi = np.where(below, mid, hi)
         lo = np.where(below, lo, mid)
     # the bracket is now ~1 m: two false-position steps bring smooth surfaces to mm
-    f_lo = oz + lo * dk[2] - _height(ou + lo * dk[0], ov + lo * dk[1], t)
-    f_hi = oz + hi * dk[2] - _height(ou + hi * dk[0], ov + hi * dk[1], t)
+    f_lo = oz + lo * dk[2] - site.height(ou + lo * dk[0], ov + lo * dk[1], t)
+    f_hi = oz + hi * dk[2] - site.height(ou + hi * dk[0], ov + hi * dk[1], t)
     for _ in range(2):
         mid = lo + (hi - lo) * f_lo / np.maximum(f_lo - f_hi, 1e-12)
-        f_mid = oz + mid * dk[2] - _height(ou + mid * dk[0], ov + mid * dk[1], t)
+        f_mid = oz + mid * dk[2] - site.height(ou + mid * dk[0], ov + mid * dk[1], t)
         below = f_mid <= 0
         hi, f_hi = np.where(below, mid, hi), np.where(below, f_mid, f_hi)
         lo, f_lo = np.where(below, lo, mid), np.where(below, f_lo, f_mid)
@@ -200,14 +199,10 @@ def _returns(
     du, dv, dz = d[:, beam]
     x, y = site.to_utm(ou + r * du, ov + r * dv)
     z = oz + r * dz
-    refl = np.select([point_cls == c for c in _REFLECTIVITY], list(_REFLECTIVITY.values()))
-    refl = refl * rng.lognormal(0.0, 0.15, beam.size)
+    refl = _REFLECTIVITY[point_cls] * rng.lognormal(0.0, 0.15, beam.size)
     reflectance = 10.0 * np.log10(refl)  # dB, range corrected
     amplitude = reflectance - 20.0 * np.log10(r / 100.0)  # falls with range
-    colour = np.select(
-        [point_cls[:, None] == c for c in _COLOUR], [np.array(c, float) for c in _COLOUR.values()]
-    )
-    colour = np.clip(colour + rng.normal(0.0, 8.0, colour.shape), 0, 255)
+    colour = np.clip(_COLOUR[point_cls] + rng.normal(0.0, 8.0, (beam.size, 3)), 0, 255)
     return {
         "x": x,
         "y": y,

@@ -111,6 +111,14 @@ def on_ice(u: np.ndarray, v: np.ndarray) -> np.ndarray:
     return ice
 
 
+def height(u: np.ndarray, v: np.ndarray, posix_seconds: float) -> np.ndarray:
+    """Elevation (m) of the visible surface at one instant: the ray caster's hot path."""
+    z = np.maximum(land(u, v), float(tide(posix_seconds)))
+    idx = np.flatnonzero(on_ice(u, v))
+    z[idx] = np.maximum(z[idx], ice_surface(u[idx], v[idx], posix_seconds))
+    return z
+
+
 def surface(u: np.ndarray, v: np.ndarray, posix_seconds: float) -> tuple[np.ndarray, np.ndarray]:
     """Elevation (m) and surface class of the visible surface at one instant."""
     z = land(u, v)

@@ -88,12 +88,13 @@ class _Column:
 
 @dataclass
 class Part:
-    """Rows in arrival order: keys, column values, validity of nullable columns, arrival index."""
+    """Rows: keys, column values, validity of nullable columns; `rows` (arrival index) is set
+    where the order is not arrival order (spill buckets)."""
 
     keys: np.ndarray
     values: dict[str, np.ndarray]
     valid: dict[str, np.ndarray]
-    rows: np.ndarray | None = None  # kept by the spill path, where file order is not arrival order
+    rows: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.keys)
@@ -102,13 +103,6 @@ class Part:
         rows = None if self.rows is None else self.rows[idx]
         return Part(self.keys[idx], {k: v[idx] for k, v in self.values.items()}, {k: v[idx] for k, v in self.valid.items()}, rows)
 
-    def permute(self, idx: np.ndarray) -> None:
-        """Reorder in place, one column at a time, so the copy never doubles the whole part."""
-        self.keys = self.keys[idx]
-        self.rows = None if self.rows is None else self.rows[idx]
-        for d in (self.values, self.valid):
-            for k in d:
-                d[k] = d[k][idx]
 
 
 def _concat(parts: list[Part], nullable: set[str]) -> Part:
@@ -291,7 +285,7 @@ def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
 
 
 def _gather(parts: list[Part], starts: np.ndarray, idx: np.ndarray, nullable: set[str]) -> Part:
-    """Rows at ascending global positions `idx` of the concatenation of `parts`."""
+    """Rows at global positions `idx` of the concatenation of `parts` (ascending if several parts)."""
     if len(parts) == 1:
         return parts[0].take(idx)
     cuts = np.searchsorted(idx, starts)
@@ -303,15 +297,18 @@ def _emit_groups(
     buckets: Iterable[list[Part]], columns: list[_Column], nullable: set[str], size: int, scan_order: bool
 ) -> Iterator[pa.Table]:
     """Cut each bucket into row groups of `size` rows; a bucket's last, partial group is carried
-    into the next bucket (its keys are all lower), so only the file's last group is short."""
+    into the next bucket (its keys are all lower), so only the file's last group is short.
+
+    A spill bucket is one part in file order: runs in arrival order, each sorted by (key, arrival),
+    so among equal keys file order is arrival order and ranks need no reordering; only each
+    group's rows are put back in arrival order, in cache-sized pieces.
+    """
     schema = pa.schema([pa.field(c.name, c.type) for c in columns])
     carry: Part | None = None
     for parts in buckets:
-        if parts and parts[0].rows is not None:  # spill: one part; bring it (and the carry) to arrival order
-            part = _concat([carry, parts[0]], nullable) if carry is not None else parts[0]
-            part.permute(_packed_order(part.rows - part.rows.min()))
-            parts, carry = [part], None
         parts = [p for p in parts if len(p)]
+        if carry is not None and parts:
+            parts, carry = [_concat([carry, *parts], nullable)], None
         if not parts:
             continue
         group = _group_of_rows(parts, size)
@@ -320,11 +317,21 @@ def _emit_groups(
         starts = np.cumsum([0] + [len(p) for p in parts])
         full = len(order) // size * size
         for start in range(0, full, size):
-            yield _table(_gather(parts, starts, order[start : start + size], nullable), columns, schema, scan_order)
+            idx = _arrival(parts, order[start : start + size])
+            yield _table(_gather(parts, starts, idx, nullable), columns, schema, scan_order)
         if full < len(order):
             carry = _gather(parts, starts, order[full:], nullable)
     if carry is not None:
-        yield _table(carry, columns, schema, scan_order)
+        yield _table(carry.take(_arrival([carry], np.arange(len(carry)))), columns, schema, scan_order)
+
+
+def _arrival(parts: list[Part], idx: np.ndarray) -> np.ndarray:
+    """Ascending positions `idx` reordered to arrival order (differs only for a spill part)."""
+    rows = parts[0].rows
+    if rows is None:
+        return idx
+    picked = rows[idx]
+    return idx[_packed_order(picked - picked.min())]
 
 
 def _table(part: Part, columns: list[_Column], schema: pa.Schema, scan_order: bool) -> pa.Table:

@@ -174,9 +174,10 @@ class Scans:
         if not tables:
             return pa.table({"scan_id": pa.array([], pa.string())})
         # per-file metadata (axes, CRS) describes one scan, not the union
-        return pa.concat_tables(
+        joined = pa.concat_tables(
             [t.replace_schema_metadata(None) for t in tables], promote_options="permissive"
         )
+        return joined.select([c for c in joined.column_names if c != "scan_id"] + ["scan_id"])
 
     def to_dask(
         self,

@@ -20,7 +20,7 @@ import fsspec
 import xarray as xr
 
 SIDECARS = (".prj", ".aux.xml", ".tfw", ".tifw", ".wld", ".hdr")
-_STAMP = re.compile(r"(?<!\d)(\d{8})(?:[_T-]?(\d{6}))?(?!\d)")
+_STAMP = re.compile(r"(?<!\d)(\d{8})(?:[_T-]?(\d{6})(?!\d))?(?!\d)")
 _DISPLACEMENT = re.compile(r"(?i)displac|deform|(?<![a-z])disp(?![a-z])|offset|motion|velocit")
 _STRAIN = re.compile(r"(?i)strain")
 

@@ -1,0 +1,89 @@
+"""``grid`` and ``change``: elevation cubes from a shelf's points, and change maps between epochs."""
+
+from __future__ import annotations
+
+import json
+
+import click
+
+from archive.cli.common import parse_storage_options, storage_option
+
+
+@click.command("grid")
+@click.argument("shelf")
+@click.option("--cell", type=float, help="Cell size in metres (default: the existing cube's, else 1).")
+@click.option("--station", help="Only this station (default: every station with points).")
+@click.option("--margin", type=float, default=10.0, show_default=True,
+              help="Metres added around the points' bounds when a grid is derived anew.")
+@click.option("--no-series", is_flag=True, help="Skip the time-series copy (pixel histories read slower).")
+@storage_option
+def grid_command(shelf, cell, station, margin, no_series, storage_options) -> None:
+    """Rebuild the elevation cubes grids/<station>.zarr of SHELF from its Parquet points.
+
+    Every scan becomes one time step (mean, standard deviation and count of point elevations
+    per cell) on its station's fixed grid. Points outside the grid are counted here and stay in
+    the points archive.
+
+    \b
+    Example:
+      scanshelf grid ./shelf --station north --cell 0.5
+    """
+    from archive.grids import grid_shelf
+
+    results = grid_shelf(shelf, cell=cell, station=station, margin=margin, series=not no_series,
+                         storage_options=parse_storage_options(storage_options))
+    for r in results:
+        s = r.spec
+        click.echo(f"{r.cube}: {r.scans} scans, {s.nx} x {s.ny} cells of {s.cell:g} m from "
+                   f"({s.x0:.3f}, {s.y0:.3f}); {r.points} points binned, {r.outside} outside the grid")
+
+
+@click.command("change")
+@click.argument("shelf")
+@click.option("--station", required=True, help="Station id.")
+@click.option("--from", "t0", required=True, help="Time of the first epoch (ISO 8601, UTC); the nearest epoch is used.")
+@click.option("--to", "t1", required=True, help="Time of the second epoch; the nearest epoch is used.")
+@click.option("-o", "--output", required=True, help="Output .zarr, .tif or .png (local path or fsspec URL).")
+@click.option("--stable-area", type=click.Path(exists=True, dir_okay=False),
+              help="GeoJSON file (geometry, Feature or FeatureCollection) of ground that did not move, in the grid CRS.")
+@storage_option
+def change_command(shelf, station, t0, t1, output, stable_area, storage_options) -> None:
+    """Elevation change of STATION between the epochs nearest to --from and --to.
+
+    Prints the two scans used, the number of cells with data in both, and, with --stable-area,
+    the median and NMAD of the change over ground that should not have moved (an estimate of
+    the registration error between the scans: check it before reading change as movement).
+
+    \b
+    Example:
+      scanshelf change ./shelf --station north --from 2025-06-01 --to 2026-06-01 \\
+          --stable-area bedrock.geojson -o north-change.tif
+    """
+    from archive.grids import elevation_change
+
+    options = parse_storage_options(storage_options)
+    area = None
+    if stable_area:
+        with open(stable_area, encoding="utf-8") as f:
+            area = _geometry_of(json.load(f), stable_area)
+    result = elevation_change(shelf, station, t0, t1, stable_area=area, storage_options=options)
+    result.export(output, storage_options=options)
+    for key, value in result.summary().items():
+        click.echo(f"{key}: {value}")
+    click.echo(f"written: {output}")
+
+
+def _geometry_of(doc: dict, name: str):
+    """A shapely geometry from a GeoJSON geometry, Feature or FeatureCollection (union)."""
+    import shapely
+    import shapely.geometry
+
+    if doc.get("type") == "FeatureCollection":
+        geoms = [shapely.geometry.shape(f["geometry"]) for f in doc.get("features", [])]
+    elif doc.get("type") == "Feature":
+        geoms = [shapely.geometry.shape(doc["geometry"])]
+    else:
+        geoms = [shapely.geometry.shape(doc)]
+    if not geoms:
+        raise ValueError(f"{name} holds no geometry; give a Polygon in the grid's CRS")
+    return shapely.union_all(geoms)

@@ -1,0 +1,79 @@
+"""Where tasks run: in this process, or on a dask distributed cluster.
+
+Both executors yield ``(task, result)`` pairs as tasks finish; a task that raised (or whose
+worker died more often than dask's retries allow) yields the exception as its result, so the
+coordinator can record it and carry on with the rest.
+"""
+
+from __future__ import annotations
+
+import logging
+from typing import Any, Callable, Iterable, Iterator
+
+log = logging.getLogger(__name__)
+
+DEFAULT_MEMORY_PER_WORKER = int(1.5 * 2**30)
+
+
+class SerialExecutor:
+    """Runs tasks one after another in this process."""
+
+    workers = 1
+    dashboard_link: str | None = None
+
+    def run(self, fn: Callable, tasks: Iterable) -> Iterator[tuple[Any, Any]]:
+        for task in tasks:
+            try:
+                yield task, fn(task)
+            except Exception as exc:  # noqa: BLE001 - reported per task by the caller
+                yield task, exc
+
+    def close(self) -> None:
+        pass
+
+
+class DaskExecutor:
+    """Runs one dask task per item on a LocalCluster (``workers=N``) or a running scheduler.
+
+    Each task is retried once by dask (a worker that dies mid-task is replaced), so a task
+    that fails twice comes back as its exception.
+    """
+
+    def __init__(self, workers: int | None = None, scheduler: str | None = None,
+                 memory_per_worker: int = DEFAULT_MEMORY_PER_WORKER) -> None:
+        from dask.distributed import Client, LocalCluster
+
+        self._cluster = None
+        if scheduler:
+            self.client = Client(scheduler)
+        else:
+            self._cluster = LocalCluster(
+                n_workers=workers or 2, threads_per_worker=1, processes=True,
+                memory_limit=memory_per_worker, dashboard_address="127.0.0.1:0",
+            )
+            self.client = Client(self._cluster)
+        self.workers = len(self.client.scheduler_info().get("workers", {})) or (workers or 1)
+        self.dashboard_link = self.client.dashboard_link
+        self.memory_per_worker = memory_per_worker
+
+    def run(self, fn: Callable, tasks: Iterable) -> Iterator[tuple[Any, Any]]:
+        from dask.distributed import as_completed
+
+        tasks = list(tasks)
+        if not tasks:
+            return
+        futures = self.client.map(fn, tasks, retries=1, pure=False)
+        index = {f.key: t for f, t in zip(futures, tasks)}
+        for future in as_completed(futures):
+            task = index[future.key]
+            try:
+                yield task, future.result()
+            except Exception as exc:  # noqa: BLE001 - KilledWorker and task errors alike
+                log.warning("task failed twice: %s", exc)
+                yield task, exc
+            future.release()
+
+    def close(self) -> None:
+        self.client.close()
+        if self._cluster is not None:
+            self._cluster.close()

@@ -1,0 +1,119 @@
+"""Zarr v3 elevation cubes: layout, appends, replacement, series copy; read back by other tools."""
+
+from __future__ import annotations
+
+import json
+import os
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+
+import numpy as np
+import pytest
+import xarray as xr
+import zarr
+from pyproj import CRS
+
+from archive.grids import GridSpec, bin_points, open_cube, read_spec, write_epoch, write_series
+
+EPSG = "EPSG:32633"
+T0 = datetime(2026, 3, 1, 6, 0, tzinfo=timezone.utc)
+
+
+def spec_() -> GridSpec:
+    return GridSpec.from_bounds("north", (500000.0, 7650000.0, 500290.0, 7650190.0), cell=1.0, margin=5.0,
+                                crs_wkt=CRS.from_user_input(EPSG).to_wkt())
+
+
+def epoch(spec: GridSpec, level: float, seed: int):
+    rng = np.random.default_rng(seed)
+    n = 40_000
+    x = rng.uniform(spec.x0, spec.x1, n)
+    y = rng.uniform(spec.y0, spec.y1, n)
+    return bin_points(spec, x, y, level + 0.01 * (x - spec.x0) + rng.normal(0, 0.02, n))
+
+
+def sid(i: int) -> str:
+    return f"north-{T0 + timedelta(days=i):%Y%m%dT%H%M%SZ}"
+
+
+@pytest.fixture()
+def cube(tmp_path: Path):
+    spec = spec_()
+    url = str(tmp_path / "grids" / "north.zarr")
+    for i in (0, 1):
+        write_epoch(url, spec, T0 + timedelta(days=i), sid(i), epoch(spec, 100.0 + i, i))
+    return url, spec
+
+
+def test_store_opens_with_plain_xarray_and_zarr_and_crs_round_trips(cube):
+    url, spec = cube
+    # reference: xarray.open_zarr and zarr.open_group, no scanshelf code
+    ds = xr.open_zarr(url, zarr_format=3, consolidated=True)
+    assert dict(ds.sizes) == {"time": 2, "y": spec.ny, "x": spec.nx}
+    assert ds["elevation"].dtype == np.float32 and ds["point_count"].dtype == np.uint32
+    assert ds["elevation"].attrs["units"] == "m" and ds["elevation"].attrs["standard_name"] == "surface_altitude"
+    assert ds["elevation"].attrs["grid_mapping"] == "spatial_ref"
+    assert ds["x"].attrs["standard_name"] == "projection_x_coordinate"
+    np.testing.assert_allclose(ds["x"].values, spec.x)
+    np.testing.assert_allclose(ds["y"].values, spec.y)
+    assert str(ds["time"].values[0]) == "2026-03-01T06:00:00.000000000"
+    # reference: pyproj CRS equality after a WKT round trip through the store
+    assert CRS.from_wkt(ds["spatial_ref"].attrs["crs_wkt"]) == CRS.from_user_input(EPSG)
+    group = zarr.open_group(url, mode="r")
+    meta = group["elevation"].metadata.to_dict()
+    assert meta["codecs"][0]["name"] == "sharding_indexed"  # reference: Zarr v3 sharding codec name
+    assert meta["codecs"][0]["configuration"]["chunk_shape"] == (1, min(256, spec.ny), min(256, spec.nx))
+    root_meta = json.loads(Path(url, "zarr.json").read_text())
+    assert root_meta["consolidated_metadata"]["metadata"]["elevation"]["zarr_format"] == 3
+    assert read_spec(url) == spec
+
+
+def test_append_adds_objects_without_rewriting_earlier_chunks(cube):
+    url, spec = cube
+    before = {p: p.stat().st_mtime_ns for p in Path(url, "elevation", "c").rglob("*") if p.is_file()}
+    assert len(before) == 2  # one shard object per epoch
+    write_epoch(url, spec, T0 + timedelta(days=5), sid(5), epoch(spec, 105.0, 5))
+    after = {p: p.stat().st_mtime_ns for p in Path(url, "elevation", "c").rglob("*") if p.is_file()}
+    assert {p: after[p] for p in before} == before
+    assert len(after) == 3
+    assert open_cube(url).sizes["time"] == 3
+
+
+def test_out_of_order_append_is_read_sorted_and_rewrite_replaces(cube):
+    url, spec = cube
+    write_epoch(url, spec, T0 - timedelta(days=3), sid(-3), epoch(spec, 97.0, 9))  # an older scan arrives late
+    ds = open_cube(url)
+    assert list(ds["scan_id"].values) == [sid(-3), sid(0), sid(1)]
+    assert np.all(np.diff(ds["time"].values) > np.timedelta64(0))
+    again = epoch(spec, 150.0, 11)
+    index = write_epoch(url, spec, T0 + timedelta(days=1), sid(1), again)
+    assert index == 1  # storage slot of sid(1)
+    ds = open_cube(url)
+    assert ds.sizes["time"] == 3
+    np.testing.assert_array_equal(ds["elevation"].sel(time=ds.time[-1]).values, again.elevation)
+
+
+def test_other_grid_is_refused(cube):
+    url, spec = cube
+    other = GridSpec(spec.station, spec.crs_wkt, spec.x0, spec.y0, 2.0, spec.nx // 2, spec.ny // 2)
+    with pytest.raises(ValueError, match="different grid"):
+        write_epoch(url, other, T0 + timedelta(days=9), sid(9), epoch(other, 1.0, 1))
+
+
+def test_series_copy_equals_the_map_layout_and_goes_stale(cube):
+    url, spec = cube
+    write_series(url)
+    series = open_cube(url, layout="series")
+    maps = open_cube(url)
+    np.testing.assert_array_equal(series["elevation"][:, 40, 17].values, maps["elevation"][:, 40, 17].values)
+    assert zarr.open_group(url, mode="r")["series/elevation"].metadata.to_dict()["codecs"][0]["configuration"]["chunk_shape"] == (2, 1, 1)
+    write_epoch(url, spec, T0 + timedelta(days=7), sid(7), epoch(spec, 107.0, 7))
+    with pytest.raises(ValueError, match="stale"):
+        open_cube(url, layout="series")
+
+
+def test_naive_time_is_refused(tmp_path):
+    spec = spec_()
+    with pytest.raises(ValueError, match="timezone-aware"):
+        write_epoch(str(tmp_path / "c.zarr"), spec, datetime(2026, 1, 1), "north-20260101T000000Z", epoch(spec, 1.0, 1))
+    assert not os.path.exists(tmp_path / "c.zarr")
