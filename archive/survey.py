@@ -235,10 +235,8 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, recipe: Reci
     report.declared_count, report.columns = h.declared_count, h.columns
     report.problems.extend(h.problems)
     if deep:
-        bounds = None
         try:
-            for table in reader.chunks(salvage=True):
-                bounds = _merge_bounds(bounds, _bounds(table))
+            bounds = reader.measure()
         except SourceError as exc:
             report.status = "unusable"
             report.problems.append(_reason(exc, relpath))
@@ -311,27 +309,6 @@ def _wkt(crs: str) -> str:
     from pyproj import CRS
 
     return CRS.from_user_input(crs).to_wkt()
-
-
-def _bounds(table: pa.Table) -> tuple[float, ...] | None:
-    import pyarrow.compute as pc
-
-    if table.num_rows == 0:
-        return None
-    lows, highs = [], []
-    for axis in "xyz":
-        lo, hi = pc.min_max(table.column(axis)).values()
-        lows.append(float(lo.as_py()))
-        highs.append(float(hi.as_py()))
-    return (*lows, *highs)
-
-
-def _merge_bounds(a, b):
-    if a is None:
-        return b
-    if b is None:
-        return a
-    return (*(min(x, y) for x, y in zip(a[:3], b[:3])), *(max(x, y) for x, y in zip(a[3:], b[3:])))
 
 
 def mark_duplicates(files: Iterable[FileReport]) -> None:

@@ -40,6 +40,23 @@ SCANS = (
 )
 
 
+_SHARED: dict[str, object] = {}
+
+
+def _once(name: str, start):
+    """Yield one shared instance per session even when several test modules import the fixture."""
+    if name in _SHARED:
+        yield _SHARED[name]
+        return
+    gen = start()
+    _SHARED[name] = next(gen)
+    try:
+        yield _SHARED[name]
+    finally:
+        del _SHARED[name]
+        next(gen, None)
+
+
 def require(found: bool, what: str) -> None:
     """Fail in CI (the service is part of the contract there), skip elsewhere."""
     if found:
@@ -221,9 +238,14 @@ def _write_cube(root: Path) -> None:
 
 
 @pytest.fixture(scope="session")
-def shelf_dir(tmp_path_factory) -> tuple[Path, list[dict]]:
-    root = tmp_path_factory.mktemp("shelf")
-    return root, build_shelf(root)
+def shelf_dir(tmp_path_factory):
+    """(root, scans) of the synthetic shelf, built once per session."""
+
+    def start():
+        root = tmp_path_factory.mktemp("shelf")
+        yield root, build_shelf(root)
+
+    yield from _once("shelf", start)
 
 
 # --- nginx ---------------------------------------------------------------------------------
@@ -256,6 +278,11 @@ class Nginx:
 
 @pytest.fixture(scope="session")
 def nginx(tmp_path_factory):
+    """nginx on 127.0.0.1 serving a fresh folder (``Nginx.root``)."""
+    yield from _once("nginx", lambda: _start_nginx(tmp_path_factory))
+
+
+def _start_nginx(tmp_path_factory):
     binary = shutil.which("nginx") or ("/usr/sbin/nginx" if Path("/usr/sbin/nginx").exists() else None)
     require(binary is not None, "nginx")
     prefix = tmp_path_factory.mktemp("nginx")
@@ -302,6 +329,11 @@ class S3:
 
 @pytest.fixture(scope="session")
 def s3_endpoint():
+    """moto's S3 server on 127.0.0.1 with one empty bucket."""
+    yield from _once("s3", _start_s3)
+
+
+def _start_s3():
     try:
         from moto.server import ThreadedMotoServer
         import s3fs

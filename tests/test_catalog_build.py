@@ -444,7 +444,7 @@ def test_collections_cover_items_and_summarise(shelf) -> None:
     docs = _docs(root)
     coll = docs["scans/collection.json"]
     (w, s, e, n), = coll["extent"]["spatial"]["bbox"]
-    for path, doc in docs.items():
+    for doc in docs.values():
         if doc["type"] == "Feature":
             b = doc["bbox"]
             assert w <= b[0] and s <= b[1] and b[2] <= e and b[3] <= n

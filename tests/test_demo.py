@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import csv
 import math
-import os
 import tomllib
 from datetime import datetime, timezone
 from pathlib import Path

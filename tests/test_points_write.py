@@ -107,8 +107,13 @@ def test_row_groups_are_contiguous_hilbert_ranges_in_scan_order(memory_file) -> 
     assert np.median(areas) < 0.5 * np.median(wedges)
 
 
-def test_spill_path_writes_the_same_file(tmp_path, memory_file) -> None:
+def test_spill_path_writes_the_same_file(tmp_path, memory_file, monkeypatch) -> None:
     path, written, _ = memory_file
+    from archive.points import sort
+
+    buckets = []
+    original = sort._SpillStore.buckets
+    monkeypatch.setattr(sort._SpillStore, "buckets", lambda self, budget: (buckets.append(1) or b for b in original(self, budget)))
     spill = tmp_path / "spill"
     spill.mkdir()
     other = str(tmp_path / "spilled.parquet")
@@ -118,6 +123,7 @@ def test_spill_path_writes_the_same_file(tmp_path, memory_file) -> None:
     )
     assert pq.read_table(other).equals(pq.read_table(path))
     assert w.sha256 == written.sha256 and w.size == written.size
+    assert len(buckets) > 5  # the spill path was taken, with many buckets
     assert os.listdir(spill) == []  # spill files are gone
 
 

@@ -115,3 +115,17 @@ def test_extract_command(shelf_dir, tmp_path):
     assert len(laspy.read(out).points) == duckdb_count([s["path"] for s in scans], BOX)
     missing = CliRunner().invoke(extract_command, [str(root), "-o", str(tmp_path / "a.las")])
     assert missing.exit_code != 0 and "--bbox" in missing.output
+
+
+def test_extract_a_central_fraction(shelf_dir, tmp_path):
+    root, scans = shelf_dir
+    out = tmp_path / "centre.parquet"
+    result = CliRunner().invoke(extract_command, [str(root), "--bbox-fraction", "0.04", "--station", "south",
+                                                  "-q", "-o", str(out)])
+    assert result.exit_code == 0, result.output
+    table = pq.read_table(out)
+    x = table["x"].cast(pa.float64()).to_numpy()
+    lo, hi = scans[2]["path"], None
+    # the south scan spans 200 m: a 4% centred box is 40 m wide around the middle
+    assert x.min() >= 512_080.0 - 1e-9 and x.max() <= 512_120.0 + 1e-9
+    assert table.num_rows == duckdb_count([lo], (512_080.0, 5_420_080.0, 512_120.0, 5_420_120.0))

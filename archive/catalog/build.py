@@ -8,7 +8,6 @@ recomputed from the Items held in the index, so no Item JSON has to be re-read.
 
 from __future__ import annotations
 
-import logging
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
@@ -35,8 +34,6 @@ from archive.layout import (
     item_path,
 )
 from archive.records import ScanRecord
-
-log = logging.getLogger(__name__)
 
 
 @dataclass

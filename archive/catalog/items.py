@@ -128,15 +128,22 @@ def _iso(t: datetime) -> str:
     return t.astimezone(timezone.utc).isoformat().replace("+00:00", "Z")
 
 
+@cache
+def _to_wgs84(crs_wkt: str) -> Transformer:
+    """One transformer per CRS: building it costs more than a whole Item otherwise."""
+    return Transformer.from_crs(CRS.from_wkt(crs_wkt), CRS.from_epsg(4326), always_xy=True)
+
+
 def _footprint_and_bbox(record: ScanRecord) -> tuple[dict, list[float]]:
-    """WGS84 footprint from migrate's outline, or the reprojected native bbox when absent."""
-    if record.footprint:
-        geom = shape(record.footprint)
-    else:
-        xmin, ymin, _, xmax, ymax, _ = record.bbox
-        tf = Transformer.from_crs(CRS.from_wkt(record.crs_wkt), CRS.from_epsg(4326), always_xy=True)
-        geom = box(*tf.transform_bounds(xmin, ymin, xmax, ymax, densify_pts=21))
-    return mapping(geom), [float(v) for v in geom.bounds]
+    """WGS84 footprint and bbox; the bbox covers both the outline and every point.
+
+    The outline may leave out stray points (specks are dropped to keep it small), so the bbox
+    comes from the native bbox reprojected, widened to the outline's cells where they stick out.
+    """
+    xmin, ymin, _, xmax, ymax, _ = record.bbox
+    points_box = box(*_to_wgs84(record.crs_wkt).transform_bounds(xmin, ymin, xmax, ymax, densify_pts=21))
+    geom = shape(record.footprint) if record.footprint else points_box
+    return mapping(geom), [float(v) for v in geom.union(points_box).bounds]
 
 
 def _projection(record: ScanRecord) -> dict[str, Any]:

@@ -185,7 +185,7 @@ def _check_index(shelf: Shelf, items: dict[str, dict[str, Any]], report: VerifyR
         elif name == "item_json":
             got = [json.loads(t) for t in table.column(name).to_pylist()]
             want = [json.loads(t) for t in expected.column(name).to_pylist()]
-            for g, w in zip(got, want):
+            for g, w in zip(got, want, strict=True):
                 if g != w:
                     report.problems.append(f"{SCANS_INDEX}: item_json of {w['id']} differs from its Item JSON")
         elif table.column(name).to_pylist() != expected.column(name).to_pylist():

@@ -16,7 +16,8 @@ from archive.demo import make_demo
 @click.option("--total-points", type=int, default=None,
               help="Total points over all scans (overrides --points; for benchmark-sized archives).")
 @click.option("--weeks", default=4, show_default=True, help="Weeks of scanning from 27 September.")
-@click.option("--stations", default=2, show_default=True, type=click.IntRange(1, 2))
+@click.option("--stations", default=2, show_default=True, type=click.IntRange(1, 2),
+              help="1: the north scanner only; 2: north and south.")
 @click.option("--no-faults", is_flag=True, help="Leave out the planted faults.")
 @click.option("--workers", type=int, default=None, help="Processes writing scans (default: up to 2).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing DEST/source.")
@@ -27,11 +28,10 @@ def demo(dest, seed, points, total_points, weeks, stations, no_faults, workers, 
     products and planted faults; DEST/demo-truth.json says what every file holds and
     DEST/recipe.toml tells a migration what the files cannot.
 
-    Example:
-
+    \b
+    Examples:
         scanshelf demo ./scanshelf-demo --points 20000 --weeks 4
-
-        scanshelf demo /data/big-demo --total-points 2000000000 --no-faults
+        scanshelf demo /data/big-demo --total-points 2000000000 --no-faults --workers 8
     """
     began = time.perf_counter()
     truth = make_demo(dest, seed=seed, points_per_scan=points, total_points=total_points, weeks=weeks,

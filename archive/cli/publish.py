@@ -22,8 +22,9 @@ STORAGE_OPTION_HELP = (
 @click.option("--workers", default=8, show_default=True, help="Parallel transfers.")
 @click.option("--no-verify", is_flag=True, help="Check sizes only after upload, not checksums.")
 @click.option("--rehash", is_flag=True, help="Hash same-size remote files instead of trusting the last manifest.")
+@click.option("-q", "--quiet", is_flag=True, help="No progress bar and no summary line.")
 def publish(shelf: str, dest: str, storage_option: tuple[str, ...], dry_run: bool, workers: int,
-            no_verify: bool, rehash: bool) -> None:
+            no_verify: bool, rehash: bool, quiet: bool) -> None:
     """Copy the shelf SHELF to DEST (s3://, gs://, az://, a folder a web server serves, ...).
 
     Data goes first and catalog.json last, so readers never see a half-published shelf.
@@ -43,7 +44,7 @@ def publish(shelf: str, dest: str, storage_option: tuple[str, ...], dry_run: boo
     from archive.publish import publish as run
 
     options = parse_storage_options(storage_option)
-    with tqdm(unit="B", unit_scale=True, desc="publish", disable=dry_run or None, file=sys.stderr) as bar:
+    with tqdm(unit="B", unit_scale=True, desc="publish", disable=dry_run or quiet or None, file=sys.stderr) as bar:
         try:
             report = run(shelf, dest, options, dry_run=dry_run, workers=workers, verify=not no_verify,
                          rehash=rehash, progress=bar.update)
@@ -53,4 +54,5 @@ def publish(shelf: str, dest: str, storage_option: tuple[str, ...], dry_run: boo
         for entry in report.files:
             if entry.action == "upload":
                 click.echo(f"upload  {entry.size:>14,}  {entry.path}")
-    click.echo(str(report))
+    if not quiet or dry_run:
+        click.echo(str(report))

@@ -58,8 +58,10 @@ def find(url, bbox, crs, start, end, station, storage_option, as_json) -> None:
 @click.argument("url")
 @_with_common
 @click.option("--columns", help="Comma-separated columns to keep besides x, y, z (default: all).")
+@click.option("--bbox-fraction", type=float, help="Instead of --bbox: a centred box over this fraction of the scans' area.")
 @click.option("-o", "--output", "out", required=True, help="Output file: .parquet, .las, .laz or .csv.")
-def extract(url, bbox, crs, start, end, station, storage_option, columns, out) -> None:
+@click.option("-q", "--quiet", is_flag=True, help="No progress bar.")
+def extract(url, bbox, crs, start, end, station, storage_option, columns, bbox_fraction, out, quiet) -> None:
     """Write the points of the shelf at URL inside --bbox to one file.
 
     Only footers and the row groups whose statistics meet the box are fetched. LAS/LAZ
@@ -74,16 +76,17 @@ def extract(url, bbox, crs, start, end, station, storage_option, columns, out) -
 
     from archive.query.export import extract as run
 
-    if bbox is None:
-        raise click.UsageError("extract needs --bbox: subsets are what it is for")
+    if (bbox is None) == (bbox_fraction is None):
+        raise click.UsageError("extract needs --bbox (or --bbox-fraction): subsets are what it is for")
     cols = [c.strip() for c in columns.split(",") if c.strip()] if columns else None
-    with tqdm(unit="scan", desc="extract", file=sys.stderr) as bar:
+    with tqdm(unit="scan", desc="extract", file=sys.stderr, disable=quiet or None) as bar:
         def step(scan):
             bar.update(1)
 
         try:
             result = run(
-                url, out, bbox, start=start, end=end, station=station or None, columns=cols, crs=crs,
+                url, out, bbox, bbox_fraction=bbox_fraction, start=start, end=end,
+                station=station or None, columns=cols, crs=crs,
                 storage_options=parse_storage_options(storage_option), progress=step,
             )
         except (ValueError, KeyError, FileNotFoundError) as e:

@@ -165,10 +165,11 @@ class _HashingSink(io.RawIOBase):
         return True
 
     def write(self, b) -> int:
+        nbytes = memoryview(b).nbytes
         self.sha256.update(b)
-        n = self.raw.write(b)
-        self.size += len(memoryview(b).cast("B"))
-        return n if n is not None else len(b)
+        self.raw.write(b)  # fsspec and local files write everything or raise
+        self.size += nbytes
+        return nbytes
 
     def tell(self) -> int:
         return self.size

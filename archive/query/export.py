@@ -48,8 +48,9 @@ def format_of(out: str) -> str:
 def extract(
     url: str,
     out: str,
-    bbox: Sequence[float],
+    bbox: Sequence[float] | None = None,
     *,
+    bbox_fraction: float | None = None,
     start: TimeLike = None,
     end: TimeLike = None,
     station: str | Sequence[str] | None = None,
@@ -59,9 +60,18 @@ def extract(
     out_options: dict | None = None,
     progress: Callable[[Scan], Any] | None = None,
 ) -> ExtractResult:
-    """Find scans at ``url`` over ``bbox`` and write their points inside it to ``out``."""
+    """Find scans at ``url`` over ``bbox`` and write their points inside it to ``out``.
+
+    Instead of ``bbox``, ``bbox_fraction`` takes a centred box covering that fraction of the
+    matched scans' joint extent: handy for a first look at an unknown shelf.
+    """
     kind = format_of(out)
+    if (bbox is None) == (bbox_fraction is None):
+        raise ValueError("give exactly one of bbox and bbox_fraction")
     shelf = open_shelf(url, storage_options)
+    if bbox is None:
+        bbox = shelf.find(start=start, end=end, station=station).central_bbox(bbox_fraction)
+        crs = None
     scans = shelf.find(bbox=bbox, start=start, end=end, station=station, crs=crs)
     cols = None if columns is None else list(dict.fromkeys(list(AXES) + list(columns)))
     tables, axes = [], []

@@ -144,6 +144,21 @@ class Scans:
             lines.append(f"  ... {len(self) - 20} more")
         return "\n".join(lines)
 
+    def central_bbox(self, fraction: float) -> BBox:
+        """A box centred on these scans covering ``fraction`` of their joint extent's area."""
+        if not 0 < fraction <= 1:
+            raise ValueError(f"fraction must be in (0, 1], got {fraction}")
+        boxes = [s.bbox for s in self._scans if s.bbox]
+        if not boxes:
+            raise ValueError("these scans carry no proj:bbox; give an explicit bbox")
+        n = [len(b) // 2 for b in boxes]
+        xmin, ymin = min(b[0] for b in boxes), min(b[1] for b in boxes)
+        xmax = max(b[k] for b, k in zip(boxes, n))
+        ymax = max(b[k + 1] for b, k in zip(boxes, n))
+        side = fraction**0.5 / 2
+        cx, cy, w, h = (xmin + xmax) / 2, (ymin + ymax) / 2, xmax - xmin, ymax - ymin
+        return (cx - side * w, cy - side * h, cx + side * w, cy + side * h)
+
     def _window(self, bbox: Sequence[float] | None, crs: Any) -> BBox | None:
         return self.shelf._native_bbox(bbox, crs) if bbox is not None else self.bbox
 

@@ -175,6 +175,15 @@ class AsciiReader:
             self.tally.bad_rows = bad_rows
             self.tally.problems.append(f"{bad_rows} malformed or non-numeric rows skipped")
 
+    def measure(self, chunk_size: int = 2_000_000) -> tuple[float, ...] | None:
+        """Count and bounds of the readable rows (text has to be parsed to know them)."""
+        from archive.sources.base import merge_bounds, table_bounds
+
+        bounds = None
+        for table in self.chunks(chunk_size, salvage=True):
+            bounds = merge_bounds(bounds, table_bounds(table))
+        return bounds
+
     def _convert(self, batch: pa.RecordBatch) -> tuple[pa.Table, int]:
         good = None
         for name in self._names:

@@ -69,6 +69,10 @@ class PointReader(Protocol):
     header: SourceHeader
     tally: ReadTally
 
+    def measure(self) -> tuple[float, ...] | None:
+        """Read every readable point once, filling ``tally``; return (xmin, ymin, zmin, xmax, ymax, zmax)."""
+        ...
+
     def chunks(self, chunk_size: int = 2_000_000, salvage: bool = False) -> Iterator[pa.Table]:
         """Yield tables with x, y, z (decimal) and the other attributes with their own types.
 
@@ -85,3 +89,24 @@ def scan_time_of(header: SourceHeader, tally: ReadTally) -> datetime | None:
     if header.adjusted_gps_time and tally.min_time is not None:
         return adjusted_gps_to_utc(tally.min_time)
     return None
+
+
+def table_bounds(table: pa.Table) -> tuple[float, ...] | None:
+    import pyarrow.compute as pc
+
+    if table.num_rows == 0:
+        return None
+    lows, highs = [], []
+    for axis in "xyz":
+        lo, hi = pc.min_max(table.column(axis)).values()
+        lows.append(float(lo.as_py()))
+        highs.append(float(hi.as_py()))
+    return (*lows, *highs)
+
+
+def merge_bounds(a, b):
+    if a is None:
+        return b
+    if b is None:
+        return a
+    return (*(min(x, y) for x, y in zip(a[:3], b[:3])), *(max(x, y) for x, y in zip(a[3:], b[3:])))

@@ -82,11 +82,35 @@ class LasReader:
         return header
 
     def chunks(self, chunk_size: int = 2_000_000, salvage: bool = False) -> Iterator[pa.Table]:
+        for record in self._records(chunk_size, salvage):
+            table = self._to_table(record)
+            self.tally.note_times(table.column("gps_time") if "gps_time" in table.column_names else None)
+            yield table
+
+    def measure(self, chunk_size: int = 4_000_000) -> tuple[float, ...] | None:
+        """Count, bounds and time range of the readable points, straight from the raw records."""
+        lows, highs = np.full(3, np.iinfo(np.int64).max), np.full(3, np.iinfo(np.int64).min)
+        for record in self._records(chunk_size, salvage=True):
+            raw = record.array
+            for i, name in enumerate(("X", "Y", "Z")):
+                lows[i] = min(lows[i], int(raw[name].min()))
+                highs[i] = max(highs[i], int(raw[name].max()))
+            if "gps_time" in raw.dtype.names:
+                self.tally.note_times(pa.array(raw["gps_time"]))
+        if self.tally.points == 0:
+            return None
+        axes = [self.header.axes[a] for a in "xyz"]
+        low = [v * e.scale + e.offset for e, v in zip(axes, lows)]  # ASPRS LAS: X * scale + offset
+        high = [v * e.scale + e.offset for e, v in zip(axes, highs)]
+        return (*low, *high)
+
+    def _records(self, chunk_size: int, salvage: bool):
+        """Raw laspy records of the readable points; damage raises unless ``salvage``."""
         laspy = _laspy()
         header = self.header
         if header.problems and not salvage:
             raise DamagedSource(f"{self.relpath}: {'; '.join(header.problems)}; use --salvage to keep the readable points")
-        self.tally.problems.extend(header.problems)
+        self.tally.problems.extend(p for p in header.problems if p not in self.tally.problems)
         want = self._stored if header.format == "las" else header.declared_count
         with self._opener() as fh, laspy.open(fh) as reader:
             done = 0
@@ -107,10 +131,8 @@ class LasReader:
                     self.tally.problems.append(message)
                     break
                 done += len(record)
-                table = self._to_table(record)
                 self.tally.points += len(record)
-                self.tally.note_times(table.column("gps_time") if "gps_time" in table.column_names else None)
-                yield table
+                yield record
 
     def _to_table(self, record) -> pa.Table:
         names = record.point_format.dimension_names
