@@ -38,7 +38,7 @@ CHUNK_POINTS = 2_000_000
 MEMORY_BUDGET = 768 * 2**20
 ROW_GROUP_POINTS = 262_144
 WORKER_SORT_SHARE = 0.4  # of a dask worker's memory for the sort; the rest is Arrow buffers and Python
-FOOTPRINT_CELL = 2.0  # metres: coarse occupancy for the catalog outline
+FOOTPRINT_CELLS = 256  # the catalog outline is traced on at most this many cells a side
 
 
 @dataclass(frozen=True)
@@ -432,9 +432,13 @@ def _file_metadata(task: ScanTask, header) -> str:
     })
 
 
+def _footprint_factor(spec: GridSpec) -> int:
+    return max(1, -(-max(spec.nx, spec.ny) // FOOTPRINT_CELLS))
+
+
 def _coarse(mask: np.ndarray, spec: GridSpec) -> np.ndarray:
-    """Occupancy at FOOTPRINT_CELL (or the grid cell if coarser), so outlines stay small."""
-    f = max(1, int(round(FOOTPRINT_CELL / spec.cell)))
+    """Occupancy on a grid of at most FOOTPRINT_CELLS a side: outlines stay small and fast to trace."""
+    f = _footprint_factor(spec)
     ny, nx = (mask.shape[0] + f - 1) // f * f, (mask.shape[1] + f - 1) // f * f
     padded = np.zeros((ny, nx), bool)
     padded[: mask.shape[0], : mask.shape[1]] = mask
@@ -442,7 +446,7 @@ def _coarse(mask: np.ndarray, spec: GridSpec) -> np.ndarray:
 
 
 def _coarse_transform(spec: GridSpec):
-    f = max(1, int(round(FOOTPRINT_CELL / spec.cell)))
+    f = _footprint_factor(spec)
     t = spec.transform
     return type(t)(t.a * f, t.b, t.c, t.d, t.e * f, t.f)
 
@@ -535,7 +539,9 @@ def _remove_leftovers(shelf: Path) -> None:
     """Temporary files and spill folders of a killed run are never part of the shelf."""
     import shutil
 
-    for pattern in ("points/**/*.part-*", "previews/*.part-*", "points/**/.scanshelf-spill-*"):
+    for pattern in ("points/**/*.part-*", "previews/*.part-*", "points/**/.scanshelf-spill-*", "scans/**/*.part-*",
+                    "scans/items.parquet.part-*", "grids/collection.json.part-*", "catalog.json.part-*",
+                    "grids/*.tmp-*", "survey.parquet.part"):
         for p in shelf.glob(pattern):
             if p.is_dir():
                 shutil.rmtree(p, ignore_errors=True)

@@ -186,6 +186,15 @@ def station_of(relpath: str, recipe: Recipe) -> str:
     return check_station(plain)
 
 
+def stamp_of(relpath: str, recipe: Recipe) -> datetime | None:
+    """Scan time from the recipe's time pattern, tried on the file name first, then the whole path."""
+    for text in (PurePosixPath(relpath).name, relpath):
+        m = re.search(recipe.time_pattern, text)
+        if m and (stamp := parse_stamp(m.group("time"), recipe.zone)) is not None:
+            return stamp
+    return None
+
+
 def file_sha256(fs, path: str) -> str:
     digest = hashlib.sha256()
     with fs.open(path, "rb") as fh:
@@ -253,7 +262,7 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, recipe: Reci
     if time is not None:
         report.scan_time, report.time_source = time, "gps"
     else:
-        stamp = parse_stamp(PurePosixPath(relpath).name, recipe.zone) or parse_stamp(relpath, recipe.zone)
+        stamp = stamp_of(relpath, recipe)
         if stamp is not None:
             report.scan_time, report.time_source = stamp, "name"
     if h.crs_wkt:

@@ -7,6 +7,7 @@ it is skipped with the same message.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import os
@@ -279,18 +280,28 @@ class Nginx:
 @pytest.fixture(scope="session")
 def nginx(tmp_path_factory):
     """nginx on 127.0.0.1 serving a fresh folder (``Nginx.root``)."""
-    yield from _once("nginx", lambda: _start_nginx(tmp_path_factory))
-
-
-def _start_nginx(tmp_path_factory):
-    binary = shutil.which("nginx") or ("/usr/sbin/nginx" if Path("/usr/sbin/nginx").exists() else None)
+    binary = nginx_binary()
     require(binary is not None, "nginx")
-    prefix = tmp_path_factory.mktemp("nginx")
+
+    def start():
+        with serve_with_nginx(tmp_path_factory.mktemp("nginx"), binary) as server:
+            yield server
+
+    yield from _once("nginx", start)
+
+
+def nginx_binary() -> str | None:
+    return shutil.which("nginx") or ("/usr/sbin/nginx" if Path("/usr/sbin/nginx").exists() else None)
+
+
+@contextlib.contextmanager
+def serve_with_nginx(prefix: Path, binary: str):
+    """nginx on 127.0.0.1:<free port> serving ``prefix/www``; usable outside pytest (benchmarks)."""
     root = prefix / "www"
-    root.mkdir()
+    root.mkdir(exist_ok=True)
     port = free_port()
     temp = "".join(f"  {k}_temp_path {prefix}/{k};\n" for k in ("client_body", "proxy", "fastcgi", "uwsgi", "scgi"))
-    user = "user root;\n" if os.geteuid() == 0 else ""
+    user = "user root;\n" if os.geteuid() == 0 else ""  # workers must read root-owned temp folders
     conf = prefix / "nginx.conf"
     conf.write_text(
         f"{user}daemon off;\nworker_processes 1;\npid {prefix}/nginx.pid;\nerror_log {prefix}/error.log;\n"
@@ -306,10 +317,12 @@ def _start_nginx(tmp_path_factory):
         _wait_port(port, proc)
     except RuntimeError as e:
         proc.kill()
-        pytest.fail(f"nginx did not start: {e}: {proc.stderr.read().decode()[-500:]}")
-    yield Nginx(root, f"http://127.0.0.1:{port}", prefix / "access.log")
-    proc.terminate()
-    proc.wait(10)
+        raise RuntimeError(f"nginx did not start: {e}: {proc.stderr.read().decode()[-500:]}") from None
+    try:
+        yield Nginx(root, f"http://127.0.0.1:{port}", prefix / "access.log")
+    finally:
+        proc.terminate()
+        proc.wait(10)
 
 
 # --- S3 endpoint ---------------------------------------------------------------------------

@@ -9,6 +9,7 @@ from __future__ import annotations
 import hashlib
 import json
 import shutil
+from dataclasses import replace
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
@@ -177,13 +178,17 @@ def _docs(root: Path) -> dict[str, dict]:
 
 def test_layout_written_and_catalog_last(tmp_path: Path) -> None:
     root = tmp_path / "s"
-    records = [make_scan(root, "north", T0, seed=1), make_scan(root, "east", T0, seed=2)]
+    no_outline = replace(make_scan(root, "east", T0, seed=2), footprint=None)  # falls back to the bbox
+    records = [make_scan(root, "north", T0, seed=1), no_outline]
     result = build_catalog(str(root), records, [], SETTINGS)
     assert result.written[-1] == "catalog.json"
     assert set(result.written) == {
         item_path(ScanId.parse(r.scan_id)) for r in records
     } | {"scans/collection.json", "grids/collection.json", "scans/items.parquet", "catalog.json"}
     assert not list(root.rglob("*.part-*")), "temporary files left behind"
+    east = json.loads((root / item_path(ScanId.parse(no_outline.scan_id))).read_text())
+    assert shape(east["geometry"]).equals(box(*east["bbox"]))
+    assert verify_shelf(str(root)).ok
 
 
 def test_verify_passes_on_fresh_shelf(shelf) -> None:
@@ -532,3 +537,16 @@ def test_search_index_by_area_time_and_station(shelf) -> None:
     assert week2 == [records[1].scan_id]
     assert search_index(s, station="south") == [records[2].scan_id]
     assert search_index(s, (0.0, 0.0, 1.0, 1.0)) == []  # far from the site
+
+
+def test_hrefs_leaving_the_shelf_are_refused(shelf) -> None:
+    # A catalog read from elsewhere is untrusted: nothing outside the shelf root is followed.
+    root, records, _ = shelf
+    path = root / item_path(ScanId.parse(records[0].scan_id))
+    doc = json.loads(path.read_text())
+    doc["assets"]["points"]["href"] = "../../../../outside.parquet"
+    doc["assets"]["thumbnail"]["href"] = "https://elsewhere.example/x.png"
+    path.write_text(json.dumps(doc))
+    problems = verify_shelf(str(root), quick=True).problems
+    assert any("escapes the shelf root" in p for p in problems), problems
+    assert any("is not relative to the shelf" in p for p in problems), problems

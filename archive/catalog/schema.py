@@ -113,32 +113,51 @@ def extension_problems(doc: dict[str, Any]) -> list[str]:
     return problems
 
 
-def online_problems(doc: dict[str, Any]) -> list[str]:
-    """Problems against the official extension schemas, fetched by URL (needs a network)."""
-    from pystac.validation import JsonSchemaSTACValidator
-    from pystac.validation.stac_validator import GetSchemaError
+class OnlineValidator:
+    """Validates against the official extension schemas fetched by URL (needs a network).
 
-    validator = JsonSchemaSTACValidator()
-    kind = {"Feature": pystac.STACObjectType.ITEM, "Collection": pystac.STACObjectType.COLLECTION,
-            "Catalog": pystac.STACObjectType.CATALOG}[doc["type"]]
-    problems = []
-    for url in doc.get("stac_extensions", []):
-        if url == ext.SCANSHELF:
-            continue  # our own id has no web host; it is checked offline
+    One instance per verify run: fetched schemas are cached, and a URL that cannot be fetched
+    is reported once rather than for every document.
+    """
+
+    def __init__(self) -> None:
+        from pystac.validation import JsonSchemaSTACValidator
+
+        self._validator = JsonSchemaSTACValidator()
+        self._unreachable: set[str] = set()
+
+    def problems(self, doc: dict[str, Any]) -> list[str]:
+        import logging
+
+        from pystac.validation.stac_validator import GetSchemaError
+
+        kind = {"Feature": pystac.STACObjectType.ITEM, "Collection": pystac.STACObjectType.COLLECTION,
+                "Catalog": pystac.STACObjectType.CATALOG}[doc["type"]]
+        quiet = logging.getLogger("pystac.validation.stac_validator")
+        level, quiet.level = quiet.level, logging.CRITICAL  # it logs a traceback per failure
+        problems = []
         try:
-            validator.validate_extension(doc, kind, doc["stac_version"], url)
-        except GetSchemaError as err:
-            problems.append(f"online: could not fetch {url}: {err}")
-        except pystac.STACValidationError as err:
-            problems.append(f"online {url}: {str(err).splitlines()[-1][:300]}")
-    return problems
+            for url in doc.get("stac_extensions", []):
+                if url == ext.SCANSHELF or url in self._unreachable:
+                    continue  # our own id has no web host; it is checked offline
+                try:
+                    self._validator.validate_extension(doc, kind, doc["stac_version"], url)
+                except GetSchemaError as err:
+                    self._unreachable.add(url)
+                    problems.append(f"online: could not fetch {url} ({type(err.__cause__).__name__}); "
+                                    "no network? validated offline against our rendering only")
+                except pystac.STACValidationError as err:
+                    problems.append(f"online {url}: {str(err).splitlines()[-1][:300]}")
+        finally:
+            quiet.level = level
+        return problems
 
 
-def validate(doc: dict[str, Any], online: bool = False) -> list[str]:
+def validate(doc: dict[str, Any], online: OnlineValidator | None = None) -> list[str]:
     """All problems of one STAC document; empty when it passes every check."""
     problems = core_problems(doc) + pydantic_problems(doc) + extension_problems(doc)
     if not problems:
         problems += roundtrip_problems(doc)
-    if online:
-        problems += online_problems(doc)
+    if online is not None:
+        problems += online.problems(doc)
     return problems

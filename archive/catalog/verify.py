@@ -57,6 +57,7 @@ def verify_shelf(
         report.problems.append(f"{CATALOG}: missing - not a shelf, or its catalog was never written")
         return report
     items: dict[str, dict[str, Any]] = {}
+    online_validator = schema.OnlineValidator() if online else None
     todo = [CATALOG]
     seen: set[str] = set()
     while todo:
@@ -68,7 +69,7 @@ def verify_shelf(
         if doc is None:
             continue
         report.documents += 1
-        report.problems += [f"{path}: {p}" for p in schema.validate(doc, online=online)]
+        report.problems += [f"{path}: {p}" for p in schema.validate(doc, online_validator)]
         if doc.get("type") == "Feature":
             items[path] = doc
         for link in doc.get("links", []):
@@ -178,7 +179,11 @@ def _check_index(shelf: Shelf, items: dict[str, dict[str, Any]], report: VerifyR
         report.problems.append(f"{SCANS_INDEX}: row {extra} has no Item JSON in the catalog")
     if set(indexed) != set(by_id) or len(indexed) != len(set(indexed)):
         return
-    expected = index_table(list(by_id.values()))
+    try:
+        expected = index_table(list(by_id.values()))
+    except (ValueError, KeyError, TypeError) as err:  # already reported per Item above
+        report.problems.append(f"{SCANS_INDEX}: cannot be compared with the Item JSON: {err}")
+        return
     for name in expected.column_names:
         if name not in table.column_names:
             report.problems.append(f"{SCANS_INDEX}: column {name!r} missing")

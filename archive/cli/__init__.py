@@ -11,8 +11,13 @@ import sys
 
 import click
 
+from archive.cli.catalog import catalog_command, verify_command
 from archive.cli.common import fail_cleanly
+from archive.cli.demo import demo
+from archive.cli.grids import change_command, grid_command
 from archive.cli.points import migrate_command, survey_command
+from archive.cli.publish import publish
+from archive.cli.query import extract, find
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
@@ -34,7 +39,8 @@ def cli(verbose: int) -> None:
                         format="%(levelname)s %(name)s: %(message)s")
 
 
-for command in (survey_command, migrate_command):
+for command in (demo, survey_command, migrate_command, grid_command, change_command, catalog_command,
+                verify_command, publish, find, extract):
     cli.add_command(command)
 
 

@@ -237,7 +237,7 @@ timezone = "UTC"
 station = '^(?P<station>[^/]+)/'
 time = '(?P<time>\\d{{8}}[_T]\\d{{6}})'
 include = ["**/*"]
-exclude = ["**/.*", "**/Thumbs.db", "**/README.txt"]
+exclude = ["**/.*", "**/Thumbs.db", "README.txt", "**/README.txt"]
 {stations}
 [ascii]
 delimiter = "auto"
@@ -248,7 +248,7 @@ comment = "#"
 rename = {{ "X" = "x", "Y" = "y", "Z" = "z", "Intensity" = "intensity", "Time" = "gps_time" }}
 
 [grids]
-cell = 1.0
+cell = 10.0                 # metres: 20k points per scan over ~2 km need coarse cells to overlap between epochs
 margin = 10.0
 
 [[grids.files]]
@@ -303,8 +303,9 @@ def make_demo(
     Same seed and parameters give byte-identical files. ``total_points`` (split evenly over
     all scans) overrides ``points_per_scan`` for benchmark-sized archives; files are written in
     chunks, so memory stays bounded whatever the size. ``workers`` processes write scans in
-    parallel (default: up to 2). The demo is written to a local folder; copy it elsewhere with
-    fsspec if needed.
+    parallel (default: up to 2). With one station the south-only faults (count mismatch, bad
+    ASCII rows) are left out. The demo is written to a local folder (laspy, GDAL and HDF5 write
+    local files); copy it elsewhere with fsspec if needed.
     """
     dest = Path(dest)
     source = dest / "source"
@@ -312,6 +313,8 @@ def make_demo(
         if not overwrite:
             raise FileExistsError(f"{source} already holds files; pass overwrite=True (--overwrite) to replace them")
         shutil.rmtree(source)
+        for stale in ("recipe.toml", "demo-truth.json"):
+            (dest / stale).unlink(missing_ok=True)
     source.mkdir(parents=True, exist_ok=True)
     plans = plan_scans(seed, stations, weeks, points_per_scan, total_points, faults, start, switch)
     workers = min(2, os.cpu_count() or 1) if workers is None else workers

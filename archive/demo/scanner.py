@@ -87,40 +87,45 @@ def _plan(station: Station, n_points: int) -> tuple[int, int]:
 
 
 def _cast(origin: tuple[float, float, float], d: np.ndarray, t: float) -> np.ndarray:
-    """Range to the first surface hit of each ray (NaN when none within the last step)."""
+    """Range to the first surface hit of each ray (NaN when none within the last step).
+
+    March outwards in growing steps to bracket the first crossing, halve the bracket, then
+    finish with false-position steps (millimetres on smooth surfaces).
+    """
     ou, ov, oz = origin
     n = d.shape[1]
+
+    def above(s: np.ndarray | float, dk: np.ndarray) -> np.ndarray:
+        return oz + s * dk[2] - site.height(ou + s * dk[0], ov + s * dk[1], t)
+
     lo = np.full(n, _STEPS[0])
     hi = np.full(n, np.nan)
+    close = above(_STEPS[0], d) <= 0  # ground within the first step: the scanner's own hill
+    lo[close], hi[close] = 0.1, _STEPS[0]  # 0.1 m out the ray is still above the ground
     for s in _STEPS[1:]:
         idx = np.flatnonzero(np.isnan(hi))
         if idx.size == 0:
             break
-        du, dv, dz = d[:, idx]
-        below = oz + s * dz <= site.height(ou + s * du, ov + s * dv, t)
+        below = above(s, d[:, idx]) <= 0
         hi[idx[below]] = s
         lo[idx[~below]] = s
     ok = np.isfinite(hi)
     lo, hi, dk = lo[ok], hi[ok], d[:, ok]
     for _ in range(_BISECTIONS):
         mid = 0.5 * (lo + hi)
-        below = oz + mid * dk[2] <= site.height(ou + mid * dk[0], ov + mid * dk[1], t)
+        below = above(mid, dk) <= 0
         hi = np.where(below, mid, hi)
         lo = np.where(below, lo, mid)
-    # the bracket is now ~1 m: two false-position steps bring smooth surfaces to mm
-    f_lo = oz + lo * dk[2] - site.height(ou + lo * dk[0], ov + lo * dk[1], t)
-    f_hi = oz + hi * dk[2] - site.height(ou + hi * dk[0], ov + hi * dk[1], t)
-    for _ in range(2):
-        mid = lo + (hi - lo) * f_lo / np.maximum(f_lo - f_hi, 1e-12)
-        f_mid = oz + mid * dk[2] - site.height(ou + mid * dk[0], ov + mid * dk[1], t)
+    f_lo, f_hi = above(lo, dk), above(hi, dk)  # f_lo > 0 >= f_hi by construction
+    for _ in range(3):
+        mid = lo + (hi - lo) * f_lo / (f_lo - f_hi)
+        f_mid = above(mid, dk)
         below = f_mid <= 0
         hi, f_hi = np.where(below, mid, hi), np.where(below, f_mid, f_hi)
         lo, f_lo = np.where(below, lo, mid), np.where(below, f_lo, f_mid)
-    hi = np.where(f_hi == 0, hi, lo + (hi - lo) * f_lo / np.maximum(f_lo - f_hi, 1e-12))
-    lo = hi
-    rng = np.full(n, np.nan)
-    rng[ok] = 0.5 * (lo + hi)
-    return rng
+    distance = np.full(n, np.nan)
+    distance[ok] = lo + (hi - lo) * f_lo / (f_lo - f_hi)
+    return distance
 
 
 def sweep(station: Station, start: float, n_points: int, seed: tuple[int, ...]) -> Iterator[dict[str, np.ndarray]]:

@@ -34,7 +34,7 @@ class PointFile:
     station: str  # station id (the first folder level)
     scan_id: str  # "<station>-YYYYMMDDTHHMMSSZ"
     scan_time: str  # UTC ISO "YYYY-MM-DDTHH:MM:SSZ": first point (LAS 1.4) or file-name stamp
-    end_time: str  # UTC ISO of the last point (rounded down to the second)
+    end_time: str  # UTC ISO of the last recoverable point (rounded down to the second)
     time_source: str  # "gps_time" (adjusted standard) | "file_name"
     time_stamp: str | None  # the stamp style in the file name, e.g. "YYYYMMDD_HHMMSS"
     gps_time_type: str  # "adjusted_standard" | "week_seconds"

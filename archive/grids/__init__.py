@@ -2,7 +2,8 @@
 
 from archive.grids.binning import EpochGrid, GridAccumulator, bin_points
 from archive.grids.change import ChangeResult, elevation_change
-from archive.grids.cube import open_cube, read_spec, write_epoch, write_series
+from archive.grids.cube import open_cube, read_spec, write_epoch
+from archive.grids.series import write_series
 from archive.grids.ingest import GridCrsMissing, IngestedGrid, ingest_grid
 from archive.grids.regrid import StationGridResult, grid_shelf
 from archive.grids.spec import GridSpec

@@ -6,10 +6,11 @@ Two layouts live in one store, because no single chunking serves both common rea
   split into inner chunks of ``(1, 256, 256)``. Reading one epoch's map is one object and almost
   exactly its own bytes; appending an epoch only *adds* objects, so earlier epochs' chunks are
   never rewritten.
-* the ``series`` group ("series layout") is a derived copy built by :func:`write_series` after a
-  batch of appends: shard ``(T, 16, 16)`` of inner chunks ``(T, 1, 1)``, so one pixel's whole time
-  series is one shard read — its 4 KiB index plus one chunk of T values. Readers ignore it when
-  it is stale (its scan ids differ from the root's).
+* the ``series`` group ("series layout") is a derived copy built by
+  :func:`archive.grids.series.write_series` after a batch of appends: shard ``(T, 16, 16)`` of
+  inner chunks ``(T, 1, 1)``, so one pixel's whole time series is one shard read — its 4 KiB
+  index plus one chunk of T values. :func:`open_cube` refuses it when it is stale (its scan
+  ids differ from the root's) or unfinished.
 
 Scans may arrive in any order (parallel or resumed migrations): steps are stored in arrival
 order with a ``scan_id`` coordinate along time, and :func:`open_cube` returns them sorted by
@@ -38,6 +39,7 @@ from archive.grids.spec import GridSpec
 
 SPEC_ATTR = "scanshelf:grid_spec"
 SERIES_GROUP = "series"
+SERIES_COMPLETE = "scanshelf:series_complete"
 MAP_CHUNK = 256  # inner chunk edge of the map layout (cells)
 SERIES_TILE = 16  # shard edge of the series layout (cells): 256 pixels per shard
 TIME_CHUNK = 4096  # 1-D time/scan_id coordinates: one small object, rewritten on append
@@ -133,8 +135,18 @@ def read_spec(cube_url: str, storage_options: dict | None = None) -> GridSpec | 
 
 
 def _scan_ids(cube_url: str, storage_options: dict | None) -> np.ndarray:
-    ds = xr.open_zarr(cube_url, storage_options=storage_options, zarr_format=3, consolidated=True)
+    ds = xr.open_zarr(zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True)
     return np.asarray(ds["scan_id"].values, dtype=object)
+
+
+def _mark_series_stale(cube_url: str, storage_options: dict | None) -> None:
+    """Flag the series copy as out of date *before* the root changes (safe if we die between)."""
+    fs, path = _fs(cube_url, storage_options)
+    if fs.exists(f"{path}/{SERIES_GROUP}/zarr.json"):
+        group = zarr.open_group(zarr_store(cube_url, storage_options), path=SERIES_GROUP, mode="r+",
+                                zarr_format=3, use_consolidated=False)
+        group.attrs[SERIES_COMPLETE] = False
+        zarr.consolidate_metadata(zarr_store(cube_url, storage_options))
 
 
 def write_epoch(
@@ -157,7 +169,7 @@ def write_epoch(
     if existing is None:
         fs, path = _fs(cube_url, storage_options)
         suffix = f".tmp-{uuid.uuid4().hex[:8]}"
-        step.to_zarr(cube_url.rstrip("/") + suffix, storage_options=storage_options, zarr_format=3,
+        step.to_zarr(zarr_store(cube_url.rstrip("/") + suffix, storage_options), zarr_format=3,
                      consolidated=True, mode="w-", encoding=map_encoding(spec))
         fs.mv(path.rstrip("/") + suffix, path, recursive=True)
         return 0
@@ -166,6 +178,7 @@ def write_epoch(
             f"{cube_url} was built on a different grid ({existing}); re-grid the station with "
             f"`scanshelf grid SHELF --station {spec.station}` or reuse the stored spec (read_spec)"
         )
+    _mark_series_stale(cube_url, storage_options)
     ids = _scan_ids(cube_url, storage_options)
     slot = np.flatnonzero(ids == scan_id)
     if slot.size == 0:
@@ -173,11 +186,11 @@ def write_epoch(
     if slot.size:
         i = int(slot[0])
         step.drop_vars(["x", "y", "spatial_ref"]).to_zarr(
-            cube_url, storage_options=storage_options, zarr_format=3, consolidated=True,
+            zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True,
             region={"time": slice(i, i + 1)},
         )
         return i
-    step.to_zarr(cube_url, storage_options=storage_options, zarr_format=3, consolidated=True, append_dim="time")
+    step.to_zarr(zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True, append_dim="time")
     return int(ids.size)
 
 
@@ -198,53 +211,25 @@ def open_cube(
     # 1-D time coordinates are stored in longer chunks, which xarray warns about: harmless here
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="The specified chunks separate", category=UserWarning)
-        root = xr.open_zarr(url, storage_options=storage_options, zarr_format=3, consolidated=True,
+        root = xr.open_zarr(zarr_store(url, storage_options), zarr_format=3, consolidated=True,
                             chunks={"time": 1, "y": -1, "x": -1})
     root = root.assign_coords(scan_id=root["scan_id"].load())
     root["points_outside"] = root["points_outside"].load()
     if layout == "series":
         try:
-            ds = xr.open_zarr(url, group=SERIES_GROUP, storage_options=storage_options, zarr_format=3,
-                              consolidated=True, chunks={"time": -1, "y": 8 * SERIES_TILE, "x": 8 * SERIES_TILE})
+            ds = xr.open_zarr(zarr_store(url, storage_options), group=SERIES_GROUP, zarr_format=3,
+                              consolidated=True, chunks={"time": -1, "y": SERIES_TILE, "x": SERIES_TILE})
         except (FileNotFoundError, KeyError, zarr.errors.GroupNotFoundError) as e:
             raise ValueError(f"{url} has no series copy; build it with archive.grids.write_series") from e
         live = root["scan_id"].values
         live = set(live[live != ""])
-        if set(ds["scan_id"].values) != live:
+        if not ds.attrs.get(SERIES_COMPLETE) or set(ds["scan_id"].values) != live:
             raise ValueError(f"the series copy of {url} is stale; rebuild it with archive.grids.write_series")
         return ds.assign_coords(scan_id=ds["scan_id"].load())
     ok = root["scan_id"].values != ""
     if not ok.all():
         root = root.isel(time=np.flatnonzero(ok))
     return root.sortby("time")
-
-
-def series_encoding(ds: xr.Dataset) -> dict:
-    """Series layout: shard (T, 16, 16) of inner chunks (T, 1, 1)."""
-    t = max(1, ds.sizes["time"])
-    ty, tx = min(SERIES_TILE, ds.sizes["y"]), min(SERIES_TILE, ds.sizes["x"])
-    enc = {v: {"chunks": (t, 1, 1), "shards": (t, ty, tx), "compressors": [ZstdCodec(level=3)]} for v in CUBE_VARS}
-    enc["point_count"]["fill_value"] = 0
-    enc["time"] = {"units": "seconds since 1970-01-01", "calendar": "proleptic_gregorian", "dtype": "int64"}
-    return enc
-
-
-def write_series(cube_url: str, storage_options: dict | None = None) -> None:
-    """(Re)build the time-series copy from the map layout, sorted by time.
-
-    A full rewrite of the copy (cost: one read and one write of the cube); run it once after a
-    batch of appends, not per scan.
-    """
-    ds = open_cube(cube_url, storage_options)
-    ds = ds[list(CUBE_VARS)]
-    ty, tx = min(SERIES_TILE, ds.sizes["y"]), min(SERIES_TILE, ds.sizes["x"])
-    # dask chunks: whole shards, several per task to keep the graph small
-    ds = ds.chunk({"time": -1, "y": ty * max(1, 128 // ty), "x": tx * max(1, 128 // tx)})
-    for v in ds.variables.values():
-        v.encoding = {}
-    ds.to_zarr(cube_url, group=SERIES_GROUP, storage_options=storage_options, zarr_format=3,
-               consolidated=False, mode="w", encoding=series_encoding(ds))
-    zarr.consolidate_metadata(zarr_store(cube_url, storage_options))
 
 
 def zarr_store(url: str, storage_options: dict | None = None):
@@ -255,4 +240,4 @@ def zarr_store(url: str, storage_options: dict | None = None):
     fs, path = _fs(url, storage_options)
     if isinstance(fs, LocalFileSystem):
         return LocalStore(path)
-    return FsspecStore.from_url(url, storage_options=storage_options)
+    return FsspecStore.from_url(url, storage_options=storage_options or None)

@@ -96,6 +96,9 @@ def _prepare(ds: xr.Dataset, crs: CRS, product: str, source: str, resample_to: G
     ds = ds.rename(_variable_names(ds, product))
     old_mapping = [c for c in ds.coords if ds[c].ndim == 0 and ("crs_wkt" in ds[c].attrs or "spatial_ref" in ds[c].attrs)]
     ds = ds.drop_vars(old_mapping)
+    for c in ds.coords.values():  # undecoded NetCDF coordinates may carry a fill value: not wanted
+        c.attrs.pop("_FillValue", None)
+        c.attrs.pop("missing_value", None)
     for v in ds.data_vars.values():
         for key in ("_FillValue", "missing_value"):
             if key in v.attrs:
@@ -104,6 +107,12 @@ def _prepare(ds: xr.Dataset, crs: CRS, product: str, source: str, resample_to: G
                     v.encoding["_FillValue"] = value
         v.attrs.pop("grid_mapping", None)
         v.attrs = {k: (list(x) if isinstance(x, tuple) else x) for k, x in v.attrs.items()}
+    if "elevation" in ds.data_vars and "units" not in ds["elevation"].attrs and crs.axis_info:
+        # formats like ESRI ASCII grid carry no units: a DEM's heights are taken to be in the
+        # unit of the CRS axes (common practice), and the attributes say so
+        ds["elevation"].attrs["units"] = {"metre": "m", "foot": "ft", "US survey foot": "US_survey_foot"}.get(
+            crs.axis_info[0].unit_name, crs.axis_info[0].unit_name)
+        ds["elevation"].attrs["comment"] = "units not stored in the source file; assumed from the CRS axis unit"
     ds = ds.rio.write_crs(crs, grid_mapping_name="spatial_ref")
     ds = ds.rio.write_transform(ds.rio.transform(recalc=True))
     if resample_to is not None:

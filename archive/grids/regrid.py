@@ -21,7 +21,8 @@ import pyarrow.parquet as pq
 from pyproj import CRS
 
 from archive.grids.binning import GridAccumulator
-from archive.grids.cube import read_spec, write_epoch, write_series
+from archive.grids.cube import read_spec, write_epoch
+from archive.grids.series import write_series
 from archive.grids.spec import GridSpec
 from archive.layout import ScanId, check_station, grid_path
 

@@ -31,7 +31,8 @@ from .hilbert import SiteGrid
 COORDS = ("x", "y", "z")
 HIST_BITS = 20  # fine key prefix used to cut buckets: ~1e6 bins over the site
 BIN_BITS = 20  # bins per bucket when assigning rows to row groups
-SORT_OVERHEAD = 40  # bytes per row beyond the column data while a bucket is grouped
+SORT_OVERHEAD = 60  # bytes per row beyond the column data while a bucket is grouped (measured)
+SAMPLE = 4096  # spill runs keep every SAMPLE-th key in memory
 
 
 @dataclass(frozen=True)
@@ -101,8 +102,8 @@ class Part:
 
     def take(self, idx: np.ndarray) -> "Part":
         rows = None if self.rows is None else self.rows[idx]
-        return Part(self.keys[idx], {k: v[idx] for k, v in self.values.items()}, {k: v[idx] for k, v in self.valid.items()}, rows)
-
+        values = {k: v[idx] for k, v in self.values.items()}
+        return Part(self.keys[idx], values, {k: v[idx] for k, v in self.valid.items()}, rows)
 
 
 def _concat(parts: list[Part], nullable: set[str]) -> Part:
@@ -116,6 +117,8 @@ def _concat(parts: list[Part], nullable: set[str]) -> Part:
 
 
 class _MemoryStore:
+    """Chunks kept as they arrived, while they fit the budget: one bucket."""
+
     def __init__(self, columns: list[_Column]):
         self.columns = columns
         self.parts: list[Part] = []
@@ -149,6 +152,7 @@ class _SpillStore:
         self.hist_shift = max(0, key_bits - HIST_BITS)
         self.hist = np.zeros(1 << min(key_bits, HIST_BITS), dtype=np.int64)
         self.runs: list[tuple[int, int]] = []  # (first row in the files, length)
+        self.samples: list[np.ndarray] = []  # every SAMPLE-th key of each run, to find segments
         self.files: dict[str, object] = {}
         self.nullable: set[str] = set()
         self.count = 0
@@ -176,6 +180,7 @@ class _SpillStore:
             v = part.valid.get(name)
             self._write(f"__valid.{name}", np.ones(len(keys), np.uint8) if v is None else v[order])
         self.runs.append((self.count, len(keys)))
+        self.samples.append(keys[::SAMPLE].astype(self.key_dtype))
         self.count += len(keys)
 
     def _write(self, name: str, array: np.ndarray) -> None:
@@ -200,16 +205,14 @@ class _SpillStore:
             f.flush()
         if not self.count:
             return
-        keys_map = np.memmap(self.files["__key"].name, dtype=self.key_dtype, mode="r")
         target = max(1, budget // (_row_bytes(self.columns, self.nullable) + SORT_OVERHEAD))
         for lo, hi in _cut(self.hist, target):
             segments = []
-            for start, length in self.runs:
-                run = keys_map[start : start + length]
-                a = int(np.searchsorted(run, lo << self.hist_shift))
-                b = int(np.searchsorted(run, hi << self.hist_shift)) if hi < self.hist.size else length
+            for run, sample in zip(self.runs, self.samples):
+                a = self._search(run, sample, lo << self.hist_shift)
+                b = self._search(run, sample, hi << self.hist_shift) if hi < self.hist.size else run[1]
                 if b > a:
-                    segments.append((start + a, b - a))
+                    segments.append((run[0] + a, b - a))
             total = sum(n for _, n in segments)
             if total:
                 yield [Part(
@@ -218,7 +221,19 @@ class _SpillStore:
                     {n: self._read(f"__valid.{n}", np.dtype(np.uint8), segments, total) for n in self.nullable},
                     self._read("__row", np.dtype(np.int64), segments, total),
                 )]
-        del keys_map
+
+    def _search(self, run: tuple[int, int], sample: np.ndarray, key: int) -> int:
+        """First row of a sorted run with a key >= `key`: narrow with the sample, then read a window.
+
+        Reading beats mapping the key file: mapped pages would count towards the process's memory
+        and grow with the scan.
+        """
+        start, length = run
+        i = int(sample.searchsorted(self.key_dtype.type(key)))
+        lo = max(0, (i - 1) * SAMPLE)
+        hi = min(length, i * SAMPLE + 1)
+        window = self._read("__key", self.key_dtype, [(start + lo, hi - lo)], hi - lo)
+        return lo + int(window.searchsorted(self.key_dtype.type(key)))
 
     def close(self) -> None:
         for f in self.files.values():
@@ -299,16 +314,17 @@ def _emit_groups(
     """Cut each bucket into row groups of `size` rows; a bucket's last, partial group is carried
     into the next bucket (its keys are all lower), so only the file's last group is short.
 
-    A spill bucket is one part in file order: runs in arrival order, each sorted by (key, arrival),
-    so among equal keys file order is arrival order and ranks need no reordering; only each
-    group's rows are put back in arrival order, in cache-sized pieces.
+    A spill bucket is in file order: runs in arrival order, each sorted by (key, arrival), so among
+    equal keys file order is arrival order and ranks need no reordering; only each group's rows
+    are put back in arrival order, in cache-sized pieces. The carry stays a separate part (no
+    copy of the bucket); its keys are all below the bucket's, so no ties cross the two.
     """
     schema = pa.schema([pa.field(c.name, c.type) for c in columns])
     carry: Part | None = None
     for parts in buckets:
         parts = [p for p in parts if len(p)]
         if carry is not None and parts:
-            parts, carry = [_concat([carry, *parts], nullable)], None
+            parts, carry = [carry, *parts], None
         if not parts:
             continue
         group = _group_of_rows(parts, size)
@@ -317,21 +333,20 @@ def _emit_groups(
         starts = np.cumsum([0] + [len(p) for p in parts])
         full = len(order) // size * size
         for start in range(0, full, size):
-            idx = _arrival(parts, order[start : start + size])
-            yield _table(_gather(parts, starts, idx, nullable), columns, schema, scan_order)
+            rows = _arrival(_gather(parts, starts, order[start : start + size], nullable))
+            yield _table(rows, columns, schema, scan_order)
         if full < len(order):
             carry = _gather(parts, starts, order[full:], nullable)
+        parts = order = None  # type: ignore[assignment]  # free this bucket before the next is read
     if carry is not None:
-        yield _table(carry.take(_arrival([carry], np.arange(len(carry)))), columns, schema, scan_order)
+        yield _table(_arrival(carry), columns, schema, scan_order)
 
 
-def _arrival(parts: list[Part], idx: np.ndarray) -> np.ndarray:
-    """Ascending positions `idx` reordered to arrival order (differs only for a spill part)."""
-    rows = parts[0].rows
-    if rows is None:
-        return idx
-    picked = rows[idx]
-    return idx[_packed_order(picked - picked.min())]
+def _arrival(part: Part) -> Part:
+    """The rows in arrival order: a spill part's file order differs; memory parts are already so."""
+    if part.rows is None:
+        return part
+    return part.take(_packed_order(part.rows - part.rows.min()))
 
 
 def _table(part: Part, columns: list[_Column], schema: pa.Schema, scan_order: bool) -> pa.Table:

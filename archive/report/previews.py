@@ -9,6 +9,8 @@ the map. Both carry a colour bar and a scale bar in ground units.
 
 from __future__ import annotations
 
+import warnings
+
 import io
 import math
 
@@ -82,10 +84,34 @@ def _array_extent(da: xr.DataArray) -> tuple[np.ndarray, tuple[float, float, flo
     return values, (x[0] - half, x[-1] + half, y[-1] - half, y[0] + half), cell
 
 
+MAX_PIXELS = 640  # a preview is a quick look: larger grids are cropped to their data and block-averaged
+
+
+def _quick_look(z: np.ndarray, extent: tuple[float, float, float, float], cell: float):
+    """Crop to the cells that hold data, then average blocks so neither side exceeds MAX_PIXELS."""
+    rows, cols = np.flatnonzero(np.isfinite(z).any(axis=1)), np.flatnonzero(np.isfinite(z).any(axis=0))
+    if rows.size:
+        left, top = extent[0] + cols[0] * cell, extent[3] - rows[0] * cell
+        z = z[rows[0] : rows[-1] + 1, cols[0] : cols[-1] + 1]
+        extent = (left, left + z.shape[1] * cell, top - z.shape[0] * cell, top)
+    f = -(-max(z.shape) // MAX_PIXELS)
+    if f > 1:
+        ny, nx = -(-z.shape[0] // f) * f, -(-z.shape[1] // f) * f
+        padded = np.full((ny, nx), np.nan)
+        padded[: z.shape[0], : z.shape[1]] = z
+        blocks = padded.reshape(ny // f, f, nx // f, f)
+        with np.errstate(invalid="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            z = np.nanmean(blocks, axis=(1, 3))
+        extent = (extent[0], extent[0] + nx * cell, extent[3] - ny * cell, extent[3])
+        cell *= f
+    return z, extent, cell
+
+
 def render_preview(data, path: str, spec: GridSpec | None = None, title: str | None = None,
                    units: str = "m", storage_options: dict | None = None) -> None:
     """Hillshaded elevation of one epoch (EpochGrid + spec, Dataset or DataArray) as a PNG."""
-    z, extent, cell = _elevation_of(data, spec)
+    z, extent, cell = _quick_look(*_elevation_of(data, spec))
     valid = np.isfinite(z)
     fig, ax = plt.subplots(figsize=(6.4, 5.2))
     if valid.any():

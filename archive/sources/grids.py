@@ -126,7 +126,10 @@ def open_grid(local_path: str, fmt: str) -> xr.Dataset:
     ds = xr.Dataset()
     for i, name in enumerate(names):
         band = da.isel(band=i, drop=True)
-        band.attrs = {k: v for k, v in da.attrs.items() if k != "long_name"}
+        band.attrs = {  # rioxarray gives per-band attributes (units, ...) as tuples
+            k: (v[i] if isinstance(v, (tuple, list)) and len(v) == da.sizes["band"] else v)
+            for k, v in da.attrs.items() if k != "long_name"
+        }
         ds[name] = band
     if "spatial_ref" in da.coords:
         ds = ds.assign_coords(spatial_ref=da.coords["spatial_ref"])

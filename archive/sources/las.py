@@ -70,7 +70,7 @@ class LasReader:
             if stored != header.declared_count:
                 header.problems.append(
                     f"header declares {header.declared_count} points but the file holds {stored} "
-                    f"({'truncated' if stored < header.declared_count else 'extra data after the points'})"
+                    f"({'truncated, or a header count too large' if stored < header.declared_count else 'extra data after the points'})"
                 )
             self._stored = min(stored, header.declared_count) if stored < header.declared_count else stored
         else:

@@ -1,0 +1,83 @@
+"""``grid_shelf`` and the ``grid``/``change`` commands over a shelf's Parquet points."""
+
+from __future__ import annotations
+
+import json
+from datetime import datetime, timedelta, timezone
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import xarray as xr
+from click.testing import CliRunner
+from pyproj import CRS
+from scipy.stats import binned_statistic_2d
+
+from archive.cli.grids import change_command, grid_command
+from archive.grids import grid_shelf, open_cube, read_spec
+from archive.layout import ScanId, points_path
+from archive.points.coords import decimal_from_units
+
+EPSG = "EPSG:32633"
+T0 = datetime(2026, 2, 1, 8, tzinfo=timezone.utc)
+
+
+def write_scan(root, station: str, t: datetime, x, y, z) -> None:
+    """Points in the shelf's format: x, y, z as DECIMAL(18, 3), CRS as PROJJSON in the metadata."""
+    scan = ScanId(station, t)
+    cols = {c: decimal_from_units(np.rint(v * 1000).astype(np.int64), 3) for c, v in zip("xyz", (x, y, z))}
+    table = pa.table(cols).replace_schema_metadata(
+        {b"scanshelf": json.dumps({"scan_id": str(scan), "station": station, "crs": CRS.from_user_input(EPSG).to_json_dict()})})
+    path = root / points_path(scan)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    pq.write_table(table, path, row_group_size=5_000)
+
+
+def make_shelf(tmp_path):
+    rng = np.random.default_rng(2)
+    pts = {}
+    for i in range(3):
+        n = 30_000
+        x = np.round(rng.uniform(600000, 600050, n), 3)
+        y = np.round(rng.uniform(7000000, 7000030, n), 3)
+        z = np.round(50 + 0.1 * x % 1 + i * 0.25 + rng.normal(0, 0.01, n), 3)
+        t = T0 + timedelta(days=[20, 0, 10][i])  # written out of time order
+        write_scan(tmp_path, "north", t, x, y, z)
+        pts[t] = (x, y, z)
+    return pts
+
+
+def test_grid_shelf_bins_the_parquet_points(tmp_path):
+    pts = make_shelf(tmp_path)
+    (result,) = grid_shelf(str(tmp_path), cell=2.0, margin=4.0)
+    spec = result.spec
+    assert (result.scans, result.points, result.outside) == (3, 90_000, 0)
+    assert spec.cell == 2.0 and spec.x0 == 599996.0 and read_spec(str(tmp_path / result.cube)) == spec
+    ds = open_cube(str(tmp_path / result.cube))
+    assert [str(s) for s in ds["scan_id"].values] == [str(ScanId("north", t)) for t in sorted(pts)]
+    x, y, z = pts[T0 + timedelta(days=10)]
+    edges = (np.arange(spec.nx + 1) * spec.cell + spec.x0, np.arange(spec.ny + 1) * spec.cell + spec.y0)
+    # reference: scipy.stats.binned_statistic_2d on the decimals read as float64
+    ref = binned_statistic_2d(x, y, z, "mean", bins=edges).statistic.T[::-1]
+    np.testing.assert_allclose(ds["elevation"].isel(time=1).values, ref, atol=1e-4)
+    assert open_cube(str(tmp_path / result.cube), layout="series").sizes["time"] == 3
+
+
+def test_grid_and_change_commands(tmp_path):
+    make_shelf(tmp_path)
+    runner = CliRunner()
+    out = runner.invoke(grid_command, [str(tmp_path), "--cell", "1", "--station", "north"])
+    assert out.exit_code == 0, out.output
+    assert "grids/north.zarr: 3 scans" in out.output and "0 outside" in out.output
+    area = tmp_path / "stable.geojson"
+    area.write_text(json.dumps({"type": "Feature", "properties": {}, "geometry": {
+        "type": "Polygon", "coordinates": [[[600000, 7000000], [600020, 7000000], [600020, 7000020], [600000, 7000020], [600000, 7000000]]]}}))
+    tif = tmp_path / "change.tif"
+    out = runner.invoke(change_command, [str(tmp_path), "--station", "north", "--from", "2026-02-01T08:00:00Z",
+                                         "--to", "2026-02-21", "--stable-area", str(area), "-o", str(tif)])
+    assert out.exit_code == 0, out.output
+    assert "stable_cells: 400" in out.output and tif.exists()
+    median = float(next(line for line in out.output.splitlines() if line.startswith("stable_median_m")).split(": ")[1])
+    assert abs(median + 0.25) < 0.01  # offsets by time: T0 +0.25 m, T0+20 d +0.00 m
+    assert "Example:" in grid_command.help and "Example:" in change_command.help
+    assert xr.open_zarr(tmp_path / "grids" / "north.zarr").sizes["time"] == 3
