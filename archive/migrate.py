@@ -22,6 +22,7 @@ import pyarrow.compute as pc
 
 from archive import layout
 from archive.cluster import DEFAULT_MEMORY_PER_WORKER, DaskExecutor, SerialExecutor
+from archive.faults import crash_point
 from archive.grids import GridAccumulator, GridSpec, EpochGrid, write_epoch
 from archive.layout import ScanId
 from archive.ledger import Ledger
@@ -86,6 +87,7 @@ class MigrateResult:
     outside_grid: dict[str, int] = field(default_factory=dict)  # scan id -> points outside its station grid
     scans_total: int = 0
     dashboard: str | None = None  # dask dashboard of a cluster run
+    retired: list[str] = field(default_factory=list)  # scans replaced because their source file changed
 
     @property
     def ok(self) -> bool:
@@ -179,6 +181,7 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
     with Ledger(shelf_path / layout.LEDGER) as ledger:
         reports = _survey(fs, root, recipe, ledger, executor, progress)
         _write_survey(shelf_path, source, reports)
+        crash_point("survey.written")
         usable = [r for r in reports if r.kind == "points" and (r.status == "ok" or (salvage and r.status == "damaged"))]
         site_grid = _site_grid(ledger, usable, recipe)
         specs = _station_grids(ledger, usable, recipe)
@@ -212,9 +215,7 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
         records = ledger.scans()
         result.scans_total = len(records)
         if catalog:
-            from archive.catalog import build_catalog
-
-            build_catalog(str(shelf_path), records, settings=recipe.catalog)
+            _write_catalog(shelf_path, records, result, recipe)
 
 
 # --- survey and planning --------------------------------------------------------------------
@@ -366,6 +367,7 @@ def _convert(task: ScanTask) -> ScanOutcome:
 
     def feed(table) -> None:
         binner.add(*(_as_float(table, a, axes[a]) for a in "xyz"))
+        crash_point("points.row_group")
 
     metadata = {"scanshelf": _file_metadata(task, reader.header)}
     try:
@@ -374,7 +376,9 @@ def _convert(task: ScanTask) -> ScanOutcome:
             metadata=metadata, row_group_size=task.row_group_points, memory_budget=task.memory_budget,
             spill_dir=str(final.parent), on_sorted=feed,
         )
+        crash_point("points.written")
         os.replace(temp, final)
+        crash_point("points.renamed")
     finally:
         if temp.exists():
             temp.unlink()
@@ -461,6 +465,7 @@ def _write_preview(task: ScanTask, spec: GridSpec, epoch: EpochGrid, scan: ScanI
     try:
         render_preview(epoch, str(temp), spec=spec, title=task.scan_id)
         os.replace(temp, final)
+        crash_point("preview.renamed")
     finally:
         if temp.exists():
             temp.unlink()
@@ -478,13 +483,16 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
     previous = ledger.file(report.relpath)
     if previous and previous.scan_id and previous.scan_id != record.scan_id:
         _retire_scan(Path(task.shelf), ledger, previous.scan_id)
+        result.retired.append(previous.scan_id)
     write_epoch(str(Path(task.shelf) / layout.grid_path(record.station)), GridSpec.from_dict(task.grid_spec),
                 record.start, record.scan_id, outcome.epoch)
+    crash_point("grid.epoch")
     outputs = (record.points_href, layout.grid_path(record.station)) + ((record.preview_href,) if record.preview_href else ())
     ledger.record_file(
         report.relpath, status="partial" if record.partial else "done", scan_id=record.scan_id,
         outputs=outputs, scan=record, **common,
     )
+    crash_point("ledger.committed")
     result.converted.append(record.scan_id)
     result.points += record.point_count
     result.outside_grid[record.scan_id] = outcome.epoch.outside
@@ -492,12 +500,40 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
         result.partial.append(record.scan_id)
 
 
+def _write_catalog(shelf: Path, records: list[ScanRecord], result: MigrateResult, recipe: Recipe) -> None:
+    """Whole catalog on the first run; afterwards only the new Items plus collections, index and root."""
+    from archive.catalog import build_catalog, update_catalog
+
+    changed = set(result.converted) | set(result.retired)
+    have_catalog = (shelf / layout.CATALOG).exists() and (shelf / layout.SCANS_INDEX).exists()
+    if have_catalog and not changed and not result.grids:
+        return
+    if have_catalog:
+        new = [r for r in records if r.scan_id in changed]
+        update_catalog(str(shelf), new, removed_ids=result.retired, settings=recipe.catalog or None)
+    else:
+        build_catalog(str(shelf), records, settings=recipe.catalog)
+
+
 def _retire_scan(shelf: Path, ledger: Ledger, scan_id: str) -> None:
     """A changed source file produced a scan under a new id: the old scan's files go."""
     scan = ScanId.parse(scan_id)
     for rel in (layout.points_path(scan), layout.preview_path(scan)):
         (shelf / rel).unlink(missing_ok=True)
+    _blank_time_step(shelf / layout.grid_path(scan.station), scan_id)
     ledger.forget_scan(scan_id)
+
+
+def _blank_time_step(cube: Path, scan_id: str) -> None:
+    """An empty scan id marks a cube slot as unused; readers skip it and the next append reuses it."""
+    import zarr
+
+    if not cube.exists():
+        return
+    group = zarr.open_group(str(cube), mode="r+", zarr_format=3)
+    ids = group["scan_id"][:]
+    for i in np.flatnonzero(ids == scan_id):
+        group["scan_id"][int(i)] = ""
 
 
 def _ingest_grids(fs, root, reports, recipe, shelf: Path, ledger: Ledger, result: MigrateResult, storage_options) -> None:

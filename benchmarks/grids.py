@@ -29,7 +29,7 @@ import xarray as xr
 from zarr.storage import LocalStore, WrapperStore
 
 from archive.grids import GridAccumulator, GridSpec, bin_points, write_epoch, write_series
-from archive.grids.cube import CUBE_VARS, epoch_dataset, map_encoding, open_cube
+from archive.grids.cube import epoch_dataset
 
 EPSG = "EPSG:32633"
 

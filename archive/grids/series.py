@@ -14,8 +14,6 @@ the tests read them back with zarr-python and compare with the map layout.
 
 from __future__ import annotations
 
-import math
-
 import dask.array as da
 import fsspec
 import google_crc32c
@@ -91,7 +89,3 @@ def write_series(cube_url: str, storage_options: dict | None = None) -> None:
     group[SERIES_GROUP].attrs[SERIES_COMPLETE] = True
     zarr.consolidate_metadata(zarr_store(cube_url, storage_options))
 
-
-def shards_per_epoch(ny: int, nx: int) -> int:
-    """How many series shards one variable has (for reports)."""
-    return math.ceil(ny / SERIES_TILE) * math.ceil(nx / SERIES_TILE)
