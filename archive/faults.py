@@ -8,6 +8,9 @@ otherwise, and then costs one global lookup. Two variables drive it (read once, 
   or an OOM kill.
 * ``SCANSHELF_CRASH_LOG=<file>`` — append the name of every point reached, one a line, so a
   harness can first count the points of a clean run and then kill at each of them.
+
+A harness that forks pre-imported workers (imports cost seconds, a small run less) sets the
+same two things in the child with :func:`configure`.
 """
 
 from __future__ import annotations
@@ -19,8 +22,7 @@ CRASH_AT = "SCANSHELF_CRASH_AT"
 CRASH_LOG = "SCANSHELF_CRASH_LOG"
 
 
-def _plan() -> tuple[str, int] | None:
-    text = os.environ.get(CRASH_AT)
+def _plan(text: str | None) -> tuple[str, int] | None:
     if not text:
         return None
     name, _, n = text.rpartition(":")
@@ -29,10 +31,18 @@ def _plan() -> tuple[str, int] | None:
     return name, int(n)
 
 
-_PLAN = _plan()
+_PLAN = _plan(os.environ.get(CRASH_AT))
 _LOG = os.environ.get(CRASH_LOG) or None
 _ACTIVE = _PLAN is not None or _LOG is not None
 _seen: dict[str, int] = {}
+
+
+def configure(at: str | None = None, log: str | None = None) -> None:
+    """Arm (or, with no arguments, disarm) the crash points of this process; same forms as the variables."""
+    global _PLAN, _LOG, _ACTIVE
+    _PLAN, _LOG = _plan(at), log or None
+    _ACTIVE = _PLAN is not None or _LOG is not None
+    _seen.clear()
 
 
 def crash_point(name: str) -> None:

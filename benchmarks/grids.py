@@ -155,7 +155,7 @@ def reads(url: str, epochs: int, size: int) -> None:
     ]
     print(f"\nreads of `elevation` (float32) from the {epochs}-epoch cube; minimum = one object holding just the values")
     print(f"  {'pattern':<24}{'layout':<8}{'objects':>8}{'requests':>10}{'bytes':>12}{'min raw':>10}{'min zstd':>10}"
-          f"{'x raw':>8}{'x zstd':>8}{'time':>8}")
+          f"{'x raw':>10}{'x zstd':>10}{'time':>8}")
     for key, label, layout, read in cases:
         store.reset()
         t = time.perf_counter()
@@ -166,7 +166,7 @@ def reads(url: str, epochs: int, size: int) -> None:
         raw, packed = ideal[key]
         meant = (key == "a") == (layout == "map")
         print(f"  {label:<24}{layout:<8}{len(store.keys):>8}{store.requests:>10}{store.bytes:>12,}{raw:>10,}{packed:>10,}"
-              f"{store.bytes / raw:>8.2f}{store.bytes / packed:>8.2f}{dt:>7.2f}s" + ("  <- layout meant for it" if meant else ""))
+              f"{store.bytes / raw:>10.2f}{store.bytes / packed:>10.2f}{dt:>7.2f}s" + ("  <- layout meant for it" if meant else ""))
 
 
 def main() -> None:

@@ -53,26 +53,33 @@ def column_bytes(path: Path, columns: list[str]) -> tuple[int, int]:
     return total, md.num_rows
 
 
+def build(work: Path, points_per_scan: int, row_group_points: int | None) -> None:
+    t = time.perf_counter()
+    make_demo(work / "demo", points_per_scan=points_per_scan, weeks=1, faults=False, overwrite=True)
+    t1 = time.perf_counter()
+    extra = {"row_group_points": row_group_points} if row_group_points else {}
+    migrate(str(work / "demo/source"), str(work / "shelf"), recipe=str(work / "demo/recipe.toml"),
+            previews=False, **extra)
+    print(f"demo source {t1 - t:.0f} s, migrate {time.perf_counter() - t1:.0f} s: {work / 'shelf'}")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--points-per-scan", type=int, default=1_000_000)
     ap.add_argument("--scans", type=int, default=4, help="scans to read per window")
     ap.add_argument("--columns", default="x,y,z")
     ap.add_argument("--row-group-points", type=int, default=None, help="migrate's row-group size (default: its own)")
-    ap.add_argument("--workdir", default=None)
+    ap.add_argument("--workdir", default=None, help="reuse the shelf built there before")
     args = ap.parse_args()
     columns = args.columns.split(",")
     binary = nginx_binary()
     if binary is None:
         sys.exit("nginx not found: run .ci/install-servers")
     work = Path(args.workdir or tempfile.mkdtemp(prefix="scanshelf-remote-"))
-    t = time.perf_counter()
-    make_demo(work / "demo", points_per_scan=args.points_per_scan, weeks=1, faults=False, overwrite=True)
-    t1 = time.perf_counter()
-    extra = {"row_group_points": args.row_group_points} if args.row_group_points else {}
-    migrate(str(work / "demo/source"), str(work / "shelf"), recipe=str(work / "demo/recipe.toml"),
-            previews=False, **extra)
-    print(f"demo source {t1 - t:.0f} s, migrate {time.perf_counter() - t1:.0f} s: {work / 'shelf'}")
+    if (work / "shelf" / "catalog.json").exists():
+        print(f"reusing the shelf in {work / 'shelf'}")
+    else:
+        build(work, args.points_per_scan, args.row_group_points)
     (work / "nginx").mkdir(exist_ok=True)
     with serve_with_nginx(work / "nginx", binary) as server:
         publish(str(work / "shelf"), str(server.root / "shelf"))

@@ -128,3 +128,22 @@ def test_naive_time_is_refused(tmp_path):
     with pytest.raises(ValueError, match="timezone-aware"):
         write_epoch(str(tmp_path / "c.zarr"), spec, datetime(2026, 1, 1), "north-20260101T000000Z", epoch(spec, 1.0, 1))
     assert not os.path.exists(tmp_path / "c.zarr")
+
+
+def test_cube_through_an_fsspec_url():
+    """The same code over fsspec's in-memory filesystem (stands in for object storage)."""
+    import fsspec
+
+    spec = spec_()
+    url = "memory://scanshelf-test-cube/grids/north.zarr"
+    try:
+        for i in (1, 0):
+            write_epoch(url, spec, T0 + timedelta(days=i), sid(i), epoch(spec, 100.0 + i, i))
+        write_series(url)
+        ds = open_cube(url)
+        assert list(ds["scan_id"].values) == [sid(0), sid(1)]
+        assert read_spec(url) == spec
+        np.testing.assert_array_equal(open_cube(url, layout="series")["point_count"][:, 9, 9].values,
+                                      ds["point_count"][:, 9, 9].values)
+    finally:
+        fsspec.filesystem("memory").rm("/scanshelf-test-cube", recursive=True)

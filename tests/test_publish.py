@@ -171,3 +171,13 @@ def test_credentials_stay_out(shelf_dir, s3_endpoint, caplog, monkeypatch):
     assert S3_SECRET not in bad.output and S3_SECRET not in caplog.text
     assert "no-such-bucket-here" in bad.output
     assert not (root / "manifest.parquet").exists()  # nothing written into the shelf
+
+
+def test_options_from_fsspec_config(shelf_dir, s3_endpoint, monkeypatch):
+    """No options given: fsspec's own configuration (file or FSSPEC_S3_* variables) applies."""
+    root, _ = shelf_dir
+    monkeypatch.setitem(fsspec.config.conf, "s3", dict(s3_endpoint.options))
+    dest = f"s3://{s3_endpoint.bucket}/conf-{uuid.uuid4().hex[:6]}"
+    report = publish(str(root), dest)
+    assert layout.CATALOG in report.uploaded
+    assert report.dest == dest  # shown as given: no endpoint, key or secret attached

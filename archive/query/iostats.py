@@ -65,6 +65,7 @@ class CountingFileSystem(DirFileSystem):
     def __init__(self, path: str, fs: fsspec.AbstractFileSystem, stats: IOStats, **kwargs: Any):
         super().__init__(path=path, fs=fs, **kwargs)
         self.stats = stats
+        self.tail_hint = 64 * 1024  # bytes a tail (footer) read takes; readers raise it as they learn
 
     # whole or ranged reads of one object: one request each
     def cat_file(self, path, *args, **kwargs):

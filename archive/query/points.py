@@ -112,9 +112,13 @@ def axes_of(metadata: pq.FileMetaData) -> dict[str, AxisEncoding]:
 
 
 def open_footer(fs: AbstractFileSystem, scan: ScanFile) -> tuple[pq.ParquetFile, _SparseFile]:
-    """One tail request (two if the footer is larger than the guess)."""
+    """One tail request (two if the footer is larger than the guess).
+
+    Files of one shelf have similar footers, so the guess grows to the largest footer seen on
+    this filesystem (``tail_hint``): only the first large footer costs a second request.
+    """
     sparse = _SparseFile(scan.size, lambda s, e: fs.cat_file(scan.path, start=s, end=e))
-    start = max(0, scan.size - FOOTER_GUESS)
+    start = max(0, scan.size - getattr(fs, "tail_hint", FOOTER_GUESS))
     tail = fs.cat_file(scan.path, start=start, end=scan.size)
     if len(tail) != scan.size - start or tail[-4:] != b"PAR1":
         raise ValueError(
@@ -126,6 +130,8 @@ def open_footer(fs: AbstractFileSystem, scan: ScanFile) -> tuple[pq.ParquetFile,
     if need > len(tail):
         head = max(0, scan.size - need)
         sparse.add(head, fs.cat_file(scan.path, start=head, end=start))
+        if hasattr(fs, "tail_hint"):
+            fs.tail_hint = max(fs.tail_hint, need + 4096)
     return pq.ParquetFile(sparse), sparse
 
 

@@ -34,7 +34,7 @@ TimeLike = datetime | date | str | np.datetime64 | pd.Timestamp | None
 def redact(url: str) -> str:
     """A URL fit for messages and logs: no user, password or query string (signed URLs)."""
     parts = urlsplit(url)
-    if not parts.scheme or parts.scheme == "file":
+    if len(parts.scheme) < 2 or parts.scheme == "file":  # paths, incl. Windows drive letters
         return url
     host = parts.hostname or ""
     if parts.port:

@@ -1,0 +1,191 @@
+"""Kill anywhere, resume to the same result.
+
+`scanshelf migrate` and `scanshelf publish` run in their own processes and are killed with
+SIGKILL at named crash points in the write path (archive.faults) and after random delays; the
+same command is then run again and the shelf must equal a clean run's: the same files, the
+same decoded points per scan, the same catalog apart from the ``published`` timestamps, no
+temporary files, no scan twice and a ledger that agrees with the files.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import random
+import shutil
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import pyarrow.parquet as pq
+import pytest
+
+from tests import factory, killing
+
+CRS = factory.SITE_CRS
+SEED = 20261202
+
+
+def write_source(root: Path, which: str = "all") -> None:
+    """Four small scans over two stations in three formats (a few thousand points each)."""
+    if which in ("all", "first"):
+        factory.write_las(root / "north/a.las", 3000, factory.utc(2026, 9, 1, 6), seed=1)
+        factory.write_las(root / "south/S_20260901_180000.las", 3000, factory.utc(2026, 9, 1, 18),
+                          version="1.2", point_format=1, seed=3, extra=False)
+    if which in ("all", "second"):
+        factory.write_las(root / "north/b.laz", 3000, factory.utc(2026, 9, 1, 12), seed=2, point_format=7)
+        factory.write_csv(root / "south/exp 20260902T060000.csv", 2000, seed=4)
+
+
+def migrate_args(source: Path, shelf: Path, previews: bool = False) -> list[str]:
+    return ["migrate", str(source), str(shelf), "--crs", CRS, "-q"] + ([] if previews else ["--no-previews"])
+
+
+def check_consistent(shelf: Path) -> None:
+    """No temp files, one points file per ledger scan, no scan twice anywhere."""
+    assert killing.temp_files(shelf) == []
+    db = sqlite3.connect(f"file:{shelf / 'ledger.sqlite'}?mode=ro", uri=True)
+    try:
+        scans = [r[0] for r in db.execute("SELECT scan_id FROM scans")]
+        done = db.execute("SELECT scan_id, outputs FROM files WHERE status IN ('done', 'partial')").fetchall()
+    finally:
+        db.close()
+    assert len(scans) == len(set(scans))
+    assert sorted(s for s, _ in done) == sorted(scans)
+    for _, outputs in done:
+        for rel in json.loads(outputs):
+            assert (shelf / rel).exists(), rel
+    points = sorted(p.stem for p in (shelf / "points").rglob("*.parquet"))
+    assert points == sorted(scans)
+    index = pq.read_table(shelf / "scans/items.parquet").column("id").to_pylist()
+    assert sorted(index) == sorted(scans)
+    for station in {s.split("-")[0] for s in scans}:
+        from archive.grids import open_cube
+
+        ids = [str(v) for v in open_cube(str(shelf / f"grids/{station}.zarr"))["scan_id"].values]
+        assert sorted(ids) == sorted(s for s in scans if s.startswith(station + "-"))
+
+
+@pytest.fixture(scope="module")
+def work(tmp_path_factory):
+    base = tmp_path_factory.mktemp("kill")
+    source = base / "source"
+    write_source(source)
+    ref = base / "reference"
+    log = base / "crash.log"
+    clean = killing.run(migrate_args(source, ref), crash_log=str(log), log_dir=base / "logs")
+    assert clean.exitcode == 0, clean.output
+    check_consistent(ref)
+    counts = killing.crash_counts(log)
+    # every named point of the write path is reached in a clean run
+    assert {"survey.written", "points.row_group", "points.written", "points.renamed", "grid.epoch",
+            "ledger.committed", "catalog.file", "zarr.object"} <= set(counts), counts
+    return base, source, ref, killing.shelf_state(ref), counts, clean.seconds
+
+
+def _spread(count: int, k: int) -> list[int]:
+    """k occurrences spread over 1..count, first and last included."""
+    if count <= k:
+        return list(range(1, count + 1))
+    return sorted({1 + round(i * (count - 1) / (k - 1)) for i in range(k)})
+
+
+def kill_plan(counts) -> list[str]:
+    picks = {"survey.written": 1, "points.row_group": 2, "points.written": 2, "points.renamed": 2,
+             "grid.epoch": 2, "ledger.committed": 2, "catalog.file": 4, "zarr.object": 6}
+    return [f"{name}:{n}" for name, k in picks.items() for n in _spread(counts[name], k)]
+
+
+def _cycle(base: Path, source: Path, name: str, kills: list[dict]) -> tuple[str, list, list]:
+    """Run the command once per kill (each killed), then once to the end; return the shelf's state."""
+    shelf = base / "cycles" / name.replace(":", "_").replace(".", "_")
+    outcomes = []
+    for kill in kills:
+        r = killing.run(migrate_args(source, shelf), log_dir=base / "logs", **kill)
+        outcomes.append(r.exitcode)
+    final = killing.run(migrate_args(source, shelf), log_dir=base / "logs")
+    assert final.exitcode == 0, f"{name}: re-run failed:\n{final.output}"
+    check_consistent(shelf)
+    return name, outcomes, killing.shelf_state(shelf)
+
+
+def test_migrate_killed_at_crash_points_resumes_to_the_clean_shelf(work) -> None:
+    base, source, ref, want, counts, _ = work
+    plan = kill_plan(counts)
+    assert len(plan) >= 20, plan
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        results = list(pool.map(lambda at: _cycle(base, source, at, [{"crash_at": at}]), plan))
+    survived = 0
+    for name, outcomes, state in results:
+        assert outcomes == [-signal.SIGKILL], f"{name}: the run was not killed there: {outcomes}"
+        assert killing.differences(state, want) == [], name
+        survived += 1
+    print(f"\nFIGURE kill points survived (migrate, injected): {survived} of {len(plan)}")
+
+
+def test_migrate_killed_after_random_delays_and_while_recovering(work) -> None:
+    base, source, ref, want, counts, seconds = work
+    rng = random.Random(SEED)
+    cycles = {f"delay-{i}": [{"kill_after": rng.uniform(0.5, max(1.0, seconds))}] for i in range(4)}
+    # a kill during the recovery of an earlier kill
+    cycles["twice-a"] = [{"crash_at": "grid.epoch:2"}, {"crash_at": "catalog.file:3"}]
+    cycles["twice-b"] = [{"crash_at": "points.written:3"}, {"crash_at": "zarr.object:2"}]
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        results = list(pool.map(lambda kv: _cycle(base, source, kv[0], kv[1]), cycles.items()))
+    killed = 0
+    for name, outcomes, state in results:
+        assert killing.differences(state, want) == [], name
+        killed += sum(1 for c in outcomes if c == -signal.SIGKILL)
+    assert killed >= 4  # the injected double kills always fire; delays may outlast a fast run
+    print(f"\nFIGURE kill points survived (migrate, random delays and kills during recovery): {killed}")
+
+
+def test_incremental_migration_killed_before_its_catalog_update(tmp_path) -> None:
+    """A second migration of new files, killed after its scans are in the ledger: the re-run
+    must still bring the catalog up to date."""
+    source = tmp_path / "source"
+    write_source(source, "first")
+    ref, shelf = tmp_path / "ref", tmp_path / "shelf"
+    logs = tmp_path / "logs"
+    for target in (ref, shelf):
+        assert killing.run(migrate_args(source, target), log_dir=logs).exitcode == 0
+    write_source(source, "second")
+    assert killing.run(migrate_args(source, ref), log_dir=logs).exitcode == 0
+    killed = killing.run(migrate_args(source, shelf), crash_at="ledger.committed:2", log_dir=logs)
+    assert killed.exitcode == -signal.SIGKILL
+    again = killing.run(migrate_args(source, shelf), log_dir=logs)
+    assert again.exitcode == 0, again.output
+    check_consistent(shelf)
+    assert killing.differences(killing.shelf_state(shelf), killing.shelf_state(ref)) == []
+
+
+def test_previews_survive_a_kill(tmp_path) -> None:
+    source = tmp_path / "source"
+    write_source(source, "first")
+    ref, shelf, logs = tmp_path / "ref", tmp_path / "shelf", tmp_path / "logs"
+    assert killing.run(migrate_args(source, ref, previews=True), log_dir=logs).exitcode == 0
+    killed = killing.run(migrate_args(source, shelf, previews=True), crash_at="preview.renamed:1", log_dir=logs)
+    assert killed.exitcode == -signal.SIGKILL
+    assert killing.run(migrate_args(source, shelf, previews=True), log_dir=logs).exitcode == 0
+    check_consistent(shelf)
+    assert killing.differences(killing.shelf_state(shelf), killing.shelf_state(ref)) == []
+
+
+def test_the_real_command_line_killed_and_rerun(work, tmp_path) -> None:
+    """The installed `scanshelf` script itself, in a plain subprocess, killed mid-run."""
+    base, source, ref, want, counts, _ = work
+    exe = Path(sys.executable).with_name("scanshelf")
+    assert exe.exists(), f"{exe} missing: pip install -e . first"
+    shelf = tmp_path / "shelf"
+    env = {**os.environ, "SCANSHELF_CRASH_AT": "points.renamed:2", "MPLBACKEND": "Agg"}
+    killed = subprocess.run([str(exe), *migrate_args(source, shelf)], env=env, capture_output=True, timeout=300)
+    assert killed.returncode == -signal.SIGKILL, killed.stderr.decode()
+    env.pop("SCANSHELF_CRASH_AT")
+    again = subprocess.run([str(exe), *migrate_args(source, shelf)], env=env, capture_output=True, timeout=300)
+    assert again.returncode == 0, again.stderr.decode()
+    check_consistent(shelf)
+    assert killing.differences(killing.shelf_state(shelf), want) == []
