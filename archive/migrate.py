@@ -39,6 +39,7 @@ CHUNK_POINTS = 2_000_000
 MEMORY_BUDGET = 768 * 2**20
 ROW_GROUP_POINTS = 262_144
 WORKER_SORT_SHARE = 0.4  # of a dask worker's memory for the sort; the rest is Arrow buffers and Python
+SERIES_REFRESH_SHARE = 0.1  # rebuild a cube's time-series copy when a run adds this share of its epochs
 FOOTPRINT_CELLS = 256  # the catalog outline is traced on at most this many cells a side
 
 
@@ -214,6 +215,7 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
         _ingest_grids(fs, root, reports, recipe, shelf_path, ledger, result, storage_options)
         records = ledger.scans()
         result.scans_total = len(records)
+        _refresh_series(shelf_path, records, result)
         if catalog:
             _write_catalog(shelf_path, records, result, recipe)
 
@@ -484,8 +486,9 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
     if previous and previous.scan_id and previous.scan_id != record.scan_id:
         _retire_scan(Path(task.shelf), ledger, previous.scan_id)
         result.retired.append(previous.scan_id)
-    write_epoch(str(Path(task.shelf) / layout.grid_path(record.station)), GridSpec.from_dict(task.grid_spec),
-                record.start, record.scan_id, outcome.epoch)
+    cube = Path(task.shelf) / layout.grid_path(record.station)
+    _repair_cube(cube)
+    write_epoch(str(cube), GridSpec.from_dict(task.grid_spec), record.start, record.scan_id, outcome.epoch)
     crash_point("grid.epoch")
     outputs = (record.points_href, layout.grid_path(record.station)) + ((record.preview_href,) if record.preview_href else ())
     ledger.record_file(
@@ -500,19 +503,78 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
         result.partial.append(record.scan_id)
 
 
+def _refresh_series(shelf: Path, records: list[ScanRecord], result: MigrateResult) -> None:
+    """Rebuild a cube's time-series copy when this run added a good share of its epochs.
+
+    The copy (one object per 16 × 16 pixels, all epochs) makes pixel histories cheap but is
+    rewritten whole; after a few incremental scans it is marked stale and readers use the map
+    layout until ``scanshelf grid`` or a larger run refreshes it.
+    """
+    from archive.grids import write_series
+
+    new = Counter(ScanId.parse(s).station for s in result.converted)
+    total = Counter(r.station for r in records)
+    for station, count in new.items():
+        if count >= SERIES_REFRESH_SHARE * total[station]:
+            write_series(str(shelf / layout.grid_path(station)))
+
+
 def _write_catalog(shelf: Path, records: list[ScanRecord], result: MigrateResult, recipe: Recipe) -> None:
     """Whole catalog on the first run; afterwards only the new Items plus collections, index and root."""
     from archive.catalog import build_catalog, update_catalog
 
-    changed = set(result.converted) | set(result.retired)
     have_catalog = (shelf / layout.CATALOG).exists() and (shelf / layout.SCANS_INDEX).exists()
-    if have_catalog and not changed and not result.grids:
+    behind, gone = _catalog_lag(shelf, records) if have_catalog else (set(), set())
+    changed = set(result.converted) | set(result.retired) | behind
+    removed = sorted(set(result.retired) | gone)
+    if have_catalog and not changed and not removed and not result.grids:
         return
     if have_catalog:
         new = [r for r in records if r.scan_id in changed]
-        update_catalog(str(shelf), new, removed_ids=result.retired, settings=recipe.catalog or None)
+        update_catalog(str(shelf), new, removed_ids=removed, settings=recipe.catalog or None)
     else:
         build_catalog(str(shelf), records, settings=recipe.catalog)
+
+
+def _catalog_lag(shelf: Path, records: list[ScanRecord]) -> tuple[set[str], set[str]]:
+    """Scans the ledger holds but the index lacks (or holds with other points), and index rows the
+    ledger no longer has: what a run killed after its ledger commits left uncatalogued."""
+    from archive.catalog.index import index_items
+    from archive.catalog.store import Shelf, multihash_sha256
+
+    listed = {}
+    for item in index_items(Shelf(str(shelf))):
+        listed[item["id"]] = item.get("assets", {}).get("points", {}).get("file:checksum")
+    behind = {r.scan_id for r in records if listed.get(r.scan_id) != multihash_sha256(r.points_sha256)}
+    return behind, set(listed) - {r.scan_id for r in records}
+
+
+def _repair_cube(cube: Path) -> None:
+    """Undo an append a killed run left half done, so that it can be redone.
+
+    An append rewrites the root metadata without its consolidated copy first, then resizes and
+    writes the arrays one by one, then consolidates: the consolidated copy is present exactly
+    when no append was cut short. Then the arrays along time are cut back to the shortest one
+    (the step being written is not in the ledger, so the re-run writes it again).
+    """
+    import zarr
+
+    root = cube / "zarr.json"
+    if not root.exists():
+        return
+    try:
+        if json.loads(root.read_text()).get("consolidated_metadata"):
+            return
+    except ValueError:
+        raise ValueError(f"{root} is damaged; delete {cube} and run `scanshelf grid` to rebuild the cube") from None
+    group = zarr.open_group(str(cube), mode="r+", zarr_format=3, use_consolidated=False)
+    along = [a for _, a in group.arrays() if (a.metadata.dimension_names or (None,))[0] == "time"]
+    if along:
+        steps = min(a.shape[0] for a in along)
+        for a in along:
+            if a.shape[0] != steps:
+                a.resize((steps, *a.shape[1:]))
+    zarr.consolidate_metadata(str(cube))
 
 
 def _retire_scan(shelf: Path, ledger: Ledger, scan_id: str) -> None:
@@ -559,7 +621,8 @@ def _ingest_grids(fs, root, reports, recipe, shelf: Path, ledger: Ledger, result
             ingested = ingest_grid(
                 _path_of(root, report.relpath), str(shelf), report.station,
                 product=(rule.product if rule else None) or report.product,
-                crs=(rule.crs if rule else None) or recipe.crs, storage_options=storage_options,
+                crs=(rule.crs if rule else None) or recipe.crs, time=report.scan_time,
+                storage_options=storage_options,
             )
         except (SourceError, ValueError, OSError) as exc:
             why = str(exc)
@@ -577,7 +640,7 @@ def _remove_leftovers(shelf: Path) -> None:
 
     for pattern in ("points/**/*.part-*", "previews/*.part-*", "points/**/.scanshelf-spill-*", "scans/**/*.part-*",
                     "scans/items.parquet.part-*", "grids/collection.json.part-*", "catalog.json.part-*",
-                    "grids/*.tmp-*", "survey.parquet.part"):
+                    "grids/*.tmp-*", "grids/**/*.partial", "survey.parquet.part"):
         for p in shelf.glob(pattern):
             if p.is_dir():
                 shutil.rmtree(p, ignore_errors=True)

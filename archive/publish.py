@@ -15,9 +15,10 @@ import io
 import logging
 import os
 import posixpath
+from collections.abc import Callable, Iterable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Any, Callable, Iterable
+from typing import Any
 
 import fsspec
 import pyarrow as pa
@@ -87,7 +88,6 @@ def phase_of(path: str) -> int:
 
 
 def _is_local_only(path: str) -> bool:
-    name = posixpath.basename(path)
     return (
         any(path == p or path.startswith(p + "-") for p in LOCAL_ONLY)
         or path == layout.MANIFEST
@@ -124,7 +124,7 @@ def _strings(obj: Any) -> Iterable[str]:
 def _remote_manifest(fs, root: str) -> dict[str, tuple[int, str]]:
     try:
         table = pq.read_table(io.BytesIO(fs.cat_file(f"{root}/{layout.MANIFEST}")))
-    except Exception:  # absent or unreadable: fall back to hashing remote copies
+    except Exception:  # noqa: BLE001 (absent or unreadable: hash the remote copies instead)
         return {}
     return {p: (s, h) for p, s, h in zip(*(table[c].to_pylist() for c in ("path", "size", "sha256")))}
 
@@ -180,7 +180,7 @@ def publish(
     try:
         src_fs, src_root = fsspec.url_to_fs(os.fspath(shelf), **(source_options or {}))
         dst_fs, dst_root = fsspec.url_to_fs(os.fspath(dest), **options)
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
         raise PublishError(f"{shown}: cannot open the destination: {_scrub(str(e), options)}") from None
     src_root, dst_root = src_root.rstrip("/"), dst_root.rstrip("/")
     if type(src_fs) is type(dst_fs) and src_root == dst_root:
@@ -201,7 +201,7 @@ def publish(
     try:
         remote_sizes = _remote_sizes(dst_fs, dst_root)
         manifest = _remote_manifest(dst_fs, dst_root) if remote_sizes else {}
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
         raise PublishError(f"{shown}: cannot list the destination: {_scrub(str(e), options)}") from None
 
     def unchanged(path: str) -> bool:
@@ -238,7 +238,7 @@ def publish(
                         w.write(chunk)
             if tmp != target:
                 dst_fs.mv(tmp, target)
-        except Exception as e:
+        except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
             raise PublishError(f"{shown}/{path}: upload failed: {type(e).__name__}: {_scrub(str(e), options)}") from None
         if progress is not None:
             progress(local[path])
@@ -251,7 +251,7 @@ def publish(
                 return f"{entry.path}: {size} bytes at the destination, {entry.size} in the shelf"
             if verify and _sha256(dst_fs, target) != entry.sha256:
                 return f"{entry.path}: checksum differs from the shelf's"
-        except Exception as e:
+        except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
             return f"{entry.path}: cannot read back: {type(e).__name__}: {_scrub(str(e), options)}"
         return None
 
@@ -293,5 +293,5 @@ def _write_manifest(fs, root: str, data: bytes, local_dst: bool, shown: str, opt
             fs.mv(tmp, target)
         else:
             fs.pipe_file(target, data)
-    except Exception as e:
+    except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
         raise PublishError(f"{shown}/{layout.MANIFEST}: write failed: {_scrub(str(e), options)}") from None

@@ -11,9 +11,9 @@ from __future__ import annotations
 import logging
 import re
 import time
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Callable
 
 from archive import layout
 from archive.recipe import Recipe
@@ -25,7 +25,7 @@ _DURATION = re.compile(r"(\d+(?:\.\d*)?|\.\d+)\s*([smhd]?)")
 UNREACHABLE = (OSError, TimeoutError)  # ConnectionError is an OSError
 
 
-def parse_duration(text: str | float | int) -> float:
+def parse_duration(text: str | float) -> float:
     """Seconds from ``"10m"``, ``"1h30m"``, ``"30s"``, ``"0.5d"`` or a plain number of seconds."""
     if isinstance(text, (int, float)):
         seconds = float(text)

@@ -28,12 +28,12 @@ import pyarrow.parquet as pq
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), ".."))
 
-from archive.demo import make_demo  # noqa: E402
-from archive.migrate import migrate  # noqa: E402
-from archive.publish import publish  # noqa: E402
-from archive.query import open_shelf  # noqa: E402
-from archive.query.shelf import Scans  # noqa: E402
-from tests.servers import nginx_binary, serve_with_nginx  # noqa: E402
+from archive.demo import make_demo
+from archive.migrate import migrate
+from archive.publish import publish
+from archive.query import open_shelf
+from archive.query.shelf import Scans
+from tests.servers import nginx_binary, serve_with_nginx
 
 
 def window(bbox, fraction: float):

@@ -28,9 +28,9 @@ from pathlib import Path
 import matplotlib
 
 matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
+import matplotlib.pyplot as plt
 
-from archive.query import open_shelf  # noqa: E402
+from archive.query import open_shelf
 
 
 def demo_shelf(work: Path) -> str:
@@ -51,7 +51,7 @@ def main(url: str, out: Path) -> None:
     print(every)
     station = every[0].station
     first = every[0].start
-    week = dict(start=first, end=first + timedelta(days=7), station=station)
+    week = {"start": first, "end": first + timedelta(days=7), "station": station}
     box = shelf.find(**week).central_bbox(0.01)  # 1 % of the station's footprint, centred
     scans = shelf.find(bbox=box, **week)
     print(f"\n{len(scans)} scan(s) of station {station} in the first week over {tuple(round(v, 1) for v in box)}")

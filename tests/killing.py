@@ -30,7 +30,7 @@ PRELOAD = [
     "archive.report.previews", "archive.faults", "tests.killing", "laspy", "zarr", "xarray",
     "matplotlib.pyplot",
 ]
-TEMP_MARKS = (".part-", ".part", ".tmp-", ".scanshelf-spill-", ".publishing")
+TEMP_MARKS = (".part-", ".part", ".partial", ".tmp-", ".scanshelf-spill-", ".publishing")
 _ctx = None
 
 

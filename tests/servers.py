@@ -16,7 +16,7 @@ import socket
 import subprocess
 import time
 from dataclasses import dataclass
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import numpy as np
@@ -35,9 +35,9 @@ TILES = 8  # 8 x 8 tiles, one row group each, in serpentine order
 BOX = (ORIGIN[0] + 60.0005, ORIGIN[1] + 90.0005, ORIGIN[0] + 88.2845, ORIGIN[1] + 118.2845)
 SCANS = (
     # station, UTC time, points, encoding of x/y/z
-    ("north", datetime(2026, 3, 1, 6, 0, tzinfo=timezone.utc), 64_000, "las"),
-    ("north", datetime(2026, 3, 8, 6, 0, tzinfo=timezone.utc), 64_000, "text"),
-    ("south", datetime(2026, 3, 4, 12, 30, tzinfo=timezone.utc), 32_000, "las"),
+    ("north", datetime(2026, 3, 1, 6, 0, tzinfo=UTC), 64_000, "las"),
+    ("north", datetime(2026, 3, 8, 6, 0, tzinfo=UTC), 64_000, "text"),
+    ("south", datetime(2026, 3, 4, 12, 30, tzinfo=UTC), 32_000, "las"),
 )
 
 
@@ -348,8 +348,8 @@ def s3_endpoint():
 
 def _start_s3():
     try:
-        from moto.server import ThreadedMotoServer
         import s3fs
+        from moto.server import ThreadedMotoServer
     except ImportError:
         require(False, "moto[server] and s3fs (pip install 'scanshelf[test]')")
     saved = dict(os.environ)

@@ -99,7 +99,7 @@ def test_interrupted_publish_resumes(shelf_dir, tmp_path, monkeypatch):
     assert len(landed) == 5
     monkeypatch.setattr(fsspec.implementations.local.LocalFileSystem, "put_file", real)
     # one landed file silently damaged, same size: it must be sent again (no manifest to trust yet)
-    victim = sorted(landed)[0]
+    victim = min(landed)
     data = bytearray((dest / victim).read_bytes())
     data[0] ^= 0xFF
     (dest / victim).write_bytes(bytes(data))

@@ -41,3 +41,19 @@ def test_migrated_shelf_over_http(small_shelf, small_source, nginx):
     theirs = xr.open_zarr(f"{nginx.url}/migrated/{layout.grid_path('north')}", zarr_format=3, consolidated=True)
     np.testing.assert_array_equal(cube["elevation"].isel(time=0).values, theirs["elevation"].isel(time=0).values)
     assert np.isfinite(cube["elevation"].isel(time=0).values).any()
+
+
+def test_extract_scans_with_different_fields(small_shelf, tmp_path):
+    """Scans of point formats 6 and 7 (with and without colour) share one LAS 1.4 file."""
+    from archive.query.export import extract
+
+    shelf_root, _, _ = small_shelf
+    shelf = open_shelf(str(shelf_root))
+    north = shelf.find(station="north", start="2026-09-01", end="2026-09-01")
+    box = north.central_bbox(0.1)
+    out = tmp_path / "north.laz"
+    result = extract(str(shelf_root), str(out), box, station="north", start="2026-09-01", end="2026-09-01")
+    las = laspy.read(out)  # reference: laspy
+    assert len(las.points) == result.points == north.read_points(bbox=box).num_rows > 0
+    assert las.header.point_format.id == 7  # colour kept from the scan that has it
+    assert result.scans == 2

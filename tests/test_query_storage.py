@@ -27,6 +27,7 @@ from archive.publish import publish
 from archive.query import open_shelf
 from tests.servers import BOX, CRS_CODE, ORIGIN, SIDE, nginx, s3_endpoint, shelf_dir  # noqa: F401 (fixtures)
 
+
 @dataclass
 class Target:
     name: str
@@ -202,3 +203,15 @@ def test_two_percent_read_from_nginx_log(nginx, shelf_dir):
     assert len(hits) <= 3
     assert sent < 0.25 * scans[0]["size"]
     assert (counted.requests, counted.bytes) == (len(hits), sent)  # Shelf.io agrees with the server
+
+
+def test_missing_server_fails_in_ci(monkeypatch):
+    from tests.servers import require
+
+    monkeypatch.setenv("CI", "true")
+    with pytest.raises(pytest.fail.Exception, match="install-servers"):
+        require(False, "nginx")
+    monkeypatch.setenv("CI", "false")
+    with pytest.raises(pytest.skip.Exception, match="install-servers"):
+        require(False, "nginx")
+    require(True, "nginx")  # present: nothing happens

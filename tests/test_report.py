@@ -5,11 +5,11 @@ from __future__ import annotations
 import base64
 import io
 import json
-import os
 import re
 import shutil
 import subprocess
 import tempfile
+import uuid
 from datetime import timedelta
 from html.parser import HTMLParser
 from pathlib import Path
@@ -23,6 +23,7 @@ from archive.report import ReportResult, write_index_html
 from archive.report.health import find_gaps, read_health
 from tests.conftest import IN_CI
 from tests.factory import utc
+from tests.servers import nginx  # noqa: F401 (fixture)
 
 ARTIFACTS = Path(__file__).resolve().parents[1] / "test-artifacts"
 
@@ -154,19 +155,22 @@ def test_problems_from_ledger_per_station(report):
     assert "north/2026/09/trunc.las" in text and "Problems at south (1)" in text
 
 
-def test_published_shelf_without_ledger_uses_survey_and_catalog(report, tmp_path):
+def test_published_shelf_over_http_uses_survey_and_catalog(report, nginx):
+    """Served by nginx, the shelf has no ledger: problems come from the survey and the Items."""
     from archive.publish import publish
 
     shelf, _, _ = report
-    dest = tmp_path / "www"
-    publish(str(shelf), str(dest))
-    assert (dest / layout.REPORT).exists() and not (dest / layout.LEDGER).exists()
-    health = read_health(dest.as_uri())
+    name = f"site-{uuid.uuid4().hex[:8]}"
+    publish(str(shelf), str(nginx.root / name))
+    url = f"{nginx.url}/{name}"
+    assert (nginx.root / name / layout.REPORT).exists() and not (nginx.root / name / layout.LEDGER).exists()
+    health = read_health(url)
     assert health.problem_sources == ["survey", "catalog"]
     north = {p.subject: p for p in health.stations["north"].problems}
     assert north["north/2026/09/trunc.las"].status == "damaged"
     assert north["north/2026/09/trunc.las"].origin == "survey"
-    assert health.scans == 5
+    assert health.scans == 5 and health.url == url
+    assert [(g.start, g.end) for g in health.stations["north"].gaps] == [(utc(2026, 9, 1, 12), utc(2026, 9, 4, 6))]
 
 
 def test_missing_catalog_names_the_fix(tmp_path):
@@ -210,7 +214,7 @@ def _run_chromium(binary: str, *args: str) -> subprocess.CompletedProcess:
             [binary, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
              "--disable-background-networking", "--disable-component-update", "--disable-sync",
              "--disable-dev-shm-usage", "--hide-scrollbars", f"--user-data-dir={profile}", *args],
-            capture_output=True, text=True, timeout=120,
+            check=False, capture_output=True, text=True, timeout=120,
         )
     finally:
         shutil.rmtree(profile, ignore_errors=True)

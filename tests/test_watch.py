@@ -11,7 +11,7 @@ import pytest
 from click.testing import CliRunner
 
 from archive import layout
-from archive.cli.report import watch_command
+from archive.cli.report import report_command, watch_command
 from archive.watch import RoundResult, parse_duration, watch
 from tests.factory import SITE_CRS, utc, write_las
 
@@ -90,7 +90,7 @@ def test_unreachable_source_is_retried_and_ctrl_c_ends_cleanly(tmp_path):
     assert all(r.errors and r.errors[0].startswith("migrate: FileNotFoundError") for r in seen)
 
 
-def test_cli_one_round_as_json(tmp_path):
+def test_cli_one_watch_round_then_a_report_as_json(tmp_path):
     source, shelf = tmp_path / "source", tmp_path / "shelf"
     write_las(source / "east/e_20260901_060000.las", 1_500, utc(2026, 9, 1, 6), seed=14)
     out = CliRunner().invoke(watch_command, [str(source), str(shelf), "--rounds", "1", "--every", "1s",
@@ -100,3 +100,14 @@ def test_cli_one_round_as_json(tmp_path):
     assert len(rounds) == 1 and rounds[0]["round"] == 1 and rounds[0]["new_scans"] == ["east-20260901T060000Z"]
     bad = CliRunner().invoke(watch_command, [str(source), str(shelf), "--every", "soon"])
     assert bad.exit_code == 2 and "--every" in bad.output
+
+    # the report of this one-scan shelf: coverage, elevation and density, no change map yet
+    page = tmp_path / "out" / "health.html"
+    out = CliRunner().invoke(report_command, [str(shelf), "-o", str(page), "--json"])
+    assert out.exit_code == 0, out.output
+    summary = json.loads(out.output)
+    assert summary["stations"] == ["east"] and summary["scans"] == 1 and summary["points"] == 1_500
+    assert summary["images"] == 3 and summary["gaps"] == 0 and summary["size"] == page.stat().st_size
+    html = page.read_text("utf-8")
+    assert "One epoch: no change to show yet." in html
+    assert 'href="../shelf/catalog.json"' in html  # links lead back to the shelf from elsewhere on disk

@@ -10,7 +10,6 @@ import click
 from archive.cli.common import parse_storage_options
 from archive.cli.publish import STORAGE_OPTION_HELP
 
-
 _common = [
     click.option("--bbox", nargs=4, type=float, default=None,
                  help="XMIN YMIN XMAX YMAX in the shelf's CRS (or in --crs)."),

@@ -11,19 +11,21 @@ import json
 import os
 import posixpath
 import tempfile
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any, Callable, Sequence
+from typing import Any
 
 import fsspec
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.csv as pcsv
 import pyarrow.parquet as pq
 from fsspec.implementations.local import LocalFileSystem
 
 from archive.points.coords import AxisEncoding, units_of
 from archive.query.iostats import IOStats
-from archive.query.points import AXES, axes_of, read_scan
+from archive.query.points import AXES, read_scan
 from archive.query.shelf import Scan, TimeLike, open_shelf
 
 FORMATS = {".parquet": "parquet", ".pq": "parquet", ".las": "las", ".laz": "laz", ".csv": "csv"}
@@ -184,13 +186,17 @@ def _write_las(table: pa.Table, path: str, axes, crs, meta: dict, compress: bool
         header.add_crs(crs)
     las = laspy.LasData(header)
     las.X, las.Y, las.Z = integers
-    for c in table.column_names:
-        if c in standard:
-            las[c] = table[c].to_numpy(zero_copy_only=False)
-    for c in extra:
-        las[c] = table[c].to_numpy(zero_copy_only=False)
+    for c in [c for c in table.column_names if c in standard] + extra:
+        las[c] = _filled(table[c])
     las.update_header()
     las.write(path, do_compress=compress)
+
+
+def _filled(column: pa.ChunkedArray) -> np.ndarray:
+    """LAS has no nulls: a field some scans lack becomes NaN (floats) or 0 (integers)."""
+    if column.null_count:
+        column = pc.fill_null(column, float("nan") if pa.types.is_floating(column.type) else 0)
+    return column.to_numpy()
 
 
 def _scan_lengths(table: pa.Table) -> list[int]:

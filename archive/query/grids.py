@@ -20,7 +20,7 @@ if TYPE_CHECKING:
     from archive.query.shelf import Shelf
 
 
-def _async_fs(shelf: "Shelf") -> CountingFileSystem:
+def _async_fs(shelf: Shelf) -> CountingFileSystem:
     inner, root = fsspec.url_to_fs(shelf._raw_url, **{**shelf._storage_options, "asynchronous": True})
     if not inner.async_impl:
         from fsspec.implementations.asyn_wrapper import AsyncFileSystemWrapper
@@ -29,7 +29,7 @@ def _async_fs(shelf: "Shelf") -> CountingFileSystem:
     return CountingFileSystem(root.rstrip("/"), inner, shelf.io, asynchronous=True)
 
 
-def open_cube(shelf: "Shelf", path: str) -> xr.Dataset:
+def open_cube(shelf: Shelf, path: str) -> xr.Dataset:
     """Open ``path`` (shelf-relative ``grids/....zarr``) lazily with shard-shaped dask chunks."""
     from zarr.storage import FsspecStore
 

@@ -29,7 +29,7 @@ class IOStats:
             self.requests += requests
             self.bytes += nbytes
 
-    def snapshot(self) -> "IOStats":
+    def snapshot(self) -> IOStats:
         with self._lock:
             return IOStats(self.requests, self.bytes)
 
@@ -38,7 +38,7 @@ class IOStats:
             self.requests = 0
             self.bytes = 0
 
-    def __sub__(self, other: "IOStats") -> "IOStats":
+    def __sub__(self, other: IOStats) -> IOStats:
         return IOStats(self.requests - other.requests, self.bytes - other.bytes)
 
     def __str__(self) -> str:

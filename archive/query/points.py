@@ -125,13 +125,14 @@ def open_footer(fs: AbstractFileSystem, scan: ScanFile) -> tuple[pq.ParquetFile,
             f"{scan.path}: not a Parquet file of the {scan.size} bytes the items index says; "
             "the shelf may be half-published or changed since: publish it again"
         )
-    sparse.add(start, tail)
     need = int.from_bytes(tail[-8:-4], "little") + 8
-    if need > len(tail):
+    if need > len(tail):  # one block, so pyarrow's single footer read is served from memory
         head = max(0, scan.size - need)
-        sparse.add(head, fs.cat_file(scan.path, start=head, end=start))
+        tail = fs.cat_file(scan.path, start=head, end=start) + tail
+        start = head
         if hasattr(fs, "tail_hint"):
             fs.tail_hint = max(fs.tail_hint, need + 4096)
+    sparse.add(start, tail)
     return pq.ParquetFile(sparse), sparse
 
 

@@ -11,11 +11,12 @@ import io
 import json
 import posixpath
 import re
+from collections.abc import Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from datetime import date, datetime, timedelta, timezone
+from datetime import date, datetime
 from functools import cached_property
-from typing import Any, Iterator, Sequence
+from typing import Any
 from urllib.parse import urlsplit, urlunsplit
 
 import fsspec
@@ -103,7 +104,7 @@ def _overlaps(a: Sequence[float], b: BBox) -> bool:
 class Scans:
     """The scans a `find` matched: iterate, ``len()``, index, read their points."""
 
-    def __init__(self, shelf: "Shelf", scans: list[Scan], bbox: BBox | None):
+    def __init__(self, shelf: Shelf, scans: list[Scan], bbox: BBox | None):
         self.shelf = shelf
         self._scans = scans
         self.bbox = bbox  # the find window in the shelf CRS: default for reads

@@ -9,22 +9,22 @@ from __future__ import annotations
 import io
 import os
 import tempfile
+from collections.abc import Callable, Sequence
 from datetime import datetime
-from typing import Callable, Sequence
 
 import matplotlib
 
 matplotlib.use("Agg")
-import matplotlib.dates as mdates  # noqa: E402
-import matplotlib.pyplot as plt  # noqa: E402
-import matplotlib.ticker as mticker  # noqa: E402
-import numpy as np  # noqa: E402
-import xarray as xr  # noqa: E402
-from matplotlib.colors import LogNorm  # noqa: E402
-from matplotlib.patches import Patch  # noqa: E402
+import matplotlib.dates as mdates
+import matplotlib.pyplot as plt
+import matplotlib.ticker as mticker
+import numpy as np
+import xarray as xr
+from matplotlib.colors import LogNorm
+from matplotlib.patches import Patch
 
-from archive.report.health import Gap  # noqa: E402
-from archive.report.previews import render_change, render_preview  # noqa: E402
+from archive.report.health import Gap
+from archive.report.previews import render_change, render_preview
 
 INK = "#1f2a30"
 SCAN = "#2f6f73"
@@ -68,7 +68,7 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
     strip.set_ylim(0, 1)
     strip.set_yticks([])
     strip.set_title(title, fontsize=10, color=INK, loc="left")
-    markers, stems, base = bars.stem(t, n, basefmt=" ")
+    markers, stems, _ = bars.stem(t, n, basefmt=" ")
     plt.setp(stems, color=SCAN, lw=1)
     plt.setp(markers, color=SCAN, markersize=3)
     if bad.any():
@@ -102,7 +102,7 @@ def change_map(change, title: str) -> bytes:
 
 def density_map(point_count: xr.DataArray, title: str) -> bytes:
     """Points per square metre of one epoch, cropped to the cells that hold points, log colours."""
-    x, y = point_count["x"].values, point_count["y"].values
+    x = point_count["x"].values
     cell = float(abs(x[1] - x[0])) if x.size > 1 else 1.0
     counts = point_count.transpose("y", "x").astype("float64")
     counts = counts.where(counts > 0)

@@ -11,9 +11,9 @@ from __future__ import annotations
 import io
 import json
 import sqlite3
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
-from typing import Sequence
 
 import pandas as pd
 import pyarrow.parquet as pq

@@ -217,9 +217,10 @@ def _maps(shelf_url: str, storage_options: dict | None, st: StationHealth, notes
             notes.append(f"station {st.station}: change over the {label} not drawn: {exc}")
             continue
         figures.append(_figure(
-            charts.change_map(change, f"change, {label}: {ids[j]} − {ids[i]}"),
+            charts.change_map(change, f"elevation change, {label}"),
             f"Elevation change over the {label} at station {st.station}",
-            f"Change over the {label}, {_when(change.time0)} → {_when(change.time1)}; "
+            f"Change over the {label}: {change.scan1} − {change.scan0} ({_when(change.time0)} → "
+            f"{_when(change.time1)}); "
             f"{change.valid_cells:,} cells hold both epochs. Red lowering, blue raising.",
         ))
     if len(times) == 2:
@@ -249,8 +250,9 @@ def _scan_table(st: StationHealth, base: str) -> str:
     for s in latest:
         data = f'<a href="{_href(base, s.points_href)}">Parquet</a>' if s.points_href else "—"
         rows.append(
-            f"<tr><td><code>{html.escape(s.id)}</code></td><td>{_when(s.time)}</td><td class=\"num\">{s.points:,}</td>"
-            f'<td class="num">{_bytes(s.size)}</td><td><a href="{_href(base, s.item_href)}">Item</a> · {data}</td></tr>'
+            f"<tr><td><code>{html.escape(s.id)}</code></td><td>{_when(s.time)}</td>"
+            f'<td class="num">{s.points:,}</td><td class="num">{_bytes(s.size)}</td>'
+            f'<td><a href="{_href(base, s.item_href)}">Item</a> · {data}</td></tr>'
         )
     more = f" (latest {LATEST_SCANS} of {len(st.scans):,})" if len(st.scans) > LATEST_SCANS else ""
     return (f'<table class="scans"><caption>Scans{more}</caption><thead><tr><th>scan</th><th>time (UTC)</th>'
@@ -377,6 +379,7 @@ h2 .label { font:600 .7rem/1 system-ui, sans-serif; text-transform:uppercase; le
 .where { font-size:.85rem; color:var(--soft); }
 figure { margin:1rem 0; }
 figure img { display:block; max-width:100%; height:auto; border:1px solid var(--rule); background:#fff; }
+figure.wide img { width:100%; }
 figcaption { font-size:.82rem; color:var(--soft); margin-top:.3rem; max-width:48rem; }
 .maps { display:grid; grid-template-columns:repeat(auto-fit, minmax(30rem, 1fr)); gap:0 1.5rem; }
 .maps > p { grid-column:1 / -1; }
