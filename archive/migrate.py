@@ -39,7 +39,6 @@ CHUNK_POINTS = 2_000_000
 MEMORY_BUDGET = 768 * 2**20
 ROW_GROUP_POINTS = 262_144
 WORKER_SORT_SHARE = 0.4  # of a dask worker's memory for the sort; the rest is Arrow buffers and Python
-SERIES_REFRESH_SHARE = 0.1  # rebuild a cube's time-series copy when a run adds this share of its epochs
 FOOTPRINT_CELLS = 256  # the catalog outline is traced on at most this many cells a side
 
 
@@ -215,9 +214,12 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
         _ingest_grids(fs, root, reports, recipe, shelf_path, ledger, result, storage_options)
         records = ledger.scans()
         result.scans_total = len(records)
-        _refresh_series(shelf_path, records, result)
         if catalog:
             _write_catalog(shelf_path, records, result, recipe)
+            if records and (result.converted or result.retired or not (shelf_path / layout.REPORT).exists()):
+                from archive.report import write_index_html
+
+                write_index_html(shelf_path)
 
 
 # --- survey and planning --------------------------------------------------------------------
@@ -501,22 +503,6 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
     result.outside_grid[record.scan_id] = outcome.epoch.outside
     if record.partial:
         result.partial.append(record.scan_id)
-
-
-def _refresh_series(shelf: Path, records: list[ScanRecord], result: MigrateResult) -> None:
-    """Rebuild a cube's time-series copy when this run added a good share of its epochs.
-
-    The copy (one object per 16 × 16 pixels, all epochs) makes pixel histories cheap but is
-    rewritten whole; after a few incremental scans it is marked stale and readers use the map
-    layout until ``scanshelf grid`` or a larger run refreshes it.
-    """
-    from archive.grids import write_series
-
-    new = Counter(ScanId.parse(s).station for s in result.converted)
-    total = Counter(r.station for r in records)
-    for station, count in new.items():
-        if count >= SERIES_REFRESH_SHARE * total[station]:
-            write_series(str(shelf / layout.grid_path(station)))
 
 
 def _write_catalog(shelf: Path, records: list[ScanRecord], result: MigrateResult, recipe: Recipe) -> None:

@@ -155,7 +155,7 @@ def _points(path: Path) -> str:
 
 
 def _ledger(path: Path) -> dict:
-    db = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
+    db = sqlite3.connect(f"file:{path}?mode=ro&immutable=1", uri=True)
     try:
         files = db.execute(
             "SELECT relpath, size, sha256, kind, status, station, scan_id, outputs, error FROM files ORDER BY relpath"

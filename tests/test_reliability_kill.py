@@ -12,12 +12,10 @@ from __future__ import annotations
 import json
 import os
 import random
-import shutil
 import signal
 import sqlite3
 import subprocess
 import sys
-import time
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -48,7 +46,7 @@ def migrate_args(source: Path, shelf: Path, previews: bool = False) -> list[str]
 def check_consistent(shelf: Path) -> None:
     """No temp files, one points file per ledger scan, no scan twice anywhere."""
     assert killing.temp_files(shelf) == []
-    db = sqlite3.connect(f"file:{shelf / 'ledger.sqlite'}?mode=ro", uri=True)
+    db = sqlite3.connect(f"file:{shelf / 'ledger.sqlite'}?mode=ro&immutable=1", uri=True)
     try:
         scans = [r[0] for r in db.execute("SELECT scan_id FROM scans")]
         done = db.execute("SELECT scan_id, outputs FROM files WHERE status IN ('done', 'partial')").fetchall()
@@ -83,7 +81,7 @@ def work(tmp_path_factory):
     counts = killing.crash_counts(log)
     # every named point of the write path is reached in a clean run
     assert {"survey.written", "points.row_group", "points.written", "points.renamed", "grid.epoch",
-            "ledger.committed", "catalog.file", "zarr.object"} <= set(counts), counts
+            "ledger.committed", "grid.series", "catalog.file", "zarr.object"} <= set(counts), counts
     return base, source, ref, killing.shelf_state(ref), counts, clean.seconds
 
 
@@ -91,12 +89,14 @@ def _spread(count: int, k: int) -> list[int]:
     """k occurrences spread over 1..count, first and last included."""
     if count <= k:
         return list(range(1, count + 1))
+    if k == 1:
+        return [count]
     return sorted({1 + round(i * (count - 1) / (k - 1)) for i in range(k)})
 
 
 def kill_plan(counts) -> list[str]:
     picks = {"survey.written": 1, "points.row_group": 2, "points.written": 2, "points.renamed": 2,
-             "grid.epoch": 2, "ledger.committed": 2, "catalog.file": 4, "zarr.object": 6}
+             "grid.epoch": 2, "ledger.committed": 2, "grid.series": 1, "catalog.file": 4, "zarr.object": 6}
     return [f"{name}:{n}" for name, k in picks.items() for n in _spread(counts[name], k)]
 
 

@@ -18,6 +18,7 @@ from archive.cli.grids import change_command, grid_command
 from archive.cli.points import migrate_command, survey_command
 from archive.cli.publish import publish
 from archive.cli.query import extract, find
+from archive.cli.report import report_command, watch_command
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
@@ -40,7 +41,7 @@ def cli(verbose: int) -> None:
 
 
 for command in (demo, survey_command, migrate_command, grid_command, change_command, catalog_command,
-                verify_command, publish, find, extract):
+                verify_command, publish, find, extract, report_command, watch_command):
     cli.add_command(command)
 
 

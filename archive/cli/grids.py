@@ -16,19 +16,39 @@ from archive.cli.common import parse_storage_options, storage_option
 @click.option("--margin", type=float, default=10.0, show_default=True,
               help="Metres added around the points' bounds when a grid is derived anew.")
 @click.option("--no-series", is_flag=True, help="Skip the time-series copy (pixel histories read slower).")
+@click.option("--series-only", is_flag=True,
+              help="Only rebuild the time-series copies of the existing cubes (after migrations added epochs).")
 @storage_option
-def grid_command(shelf, cell, station, margin, no_series, storage_options) -> None:
+def grid_command(shelf, cell, station, margin, no_series, series_only, storage_options) -> None:
     """Rebuild the elevation cubes grids/<station>.zarr of SHELF from its Parquet points.
 
     Every scan becomes one time step (mean, standard deviation and count of point elevations
     per cell) on its station's fixed grid. Points outside the grid are counted here and stay in
     the points archive.
 
+    `migrate` appends each scan's time step to the map layout (one object per epoch) but does
+    not rebuild the time-series copy (one object per 16 x 16 pixels, all epochs), which is
+    rewritten whole; run `--series-only` when pixel histories should be fast again.
+
     \b
-    Example:
+    Examples:
       scanshelf grid ./shelf --station north --cell 0.5
+      scanshelf grid ./shelf --series-only
     """
-    from archive.grids import grid_shelf
+    from archive.grids import grid_shelf, write_series
+
+    if series_only:
+        from archive import layout
+        from archive.storage import filesystem
+
+        fs, root = filesystem(shelf, parse_storage_options(storage_options))
+        cubes = [c for c in fs.glob(f"{root}/grids/*.zarr") if "-" not in c.rsplit("/", 1)[-1]]
+        for cube in sorted(cubes):
+            if station and not cube.endswith("/" + layout.grid_path(station)):
+                continue
+            write_series(cube if "://" not in shelf else fs.unstrip_protocol(cube), parse_storage_options(storage_options))
+            click.echo(f"{cube}: time-series copy rebuilt")
+        return
 
     results = grid_shelf(shelf, cell=cell, station=station, margin=margin, series=not no_series,
                          storage_options=parse_storage_options(storage_options))
