@@ -616,7 +616,8 @@ def _ingest_grids(fs, root, reports, recipe, shelf: Path, ledger: Ledger, result
             ledger.record_file(report.relpath, status="failed", error=why, **common)
             continue
         dest = getattr(ingested, "href", None) or getattr(ingested, "dest", None)
-        result.grids.append(str(dest))
+        if str(dest) not in result.grids:
+            result.grids.append(str(dest))
         ledger.record_file(report.relpath, status="done", outputs=(str(dest),), **common)
 
 

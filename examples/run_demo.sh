@@ -28,8 +28,8 @@ echo "== 5. publish to a local folder standing in for object storage =="
 scanshelf publish "$work/shelf" "file://$work/published" -q
 
 echo "== 6. find scans and extract a small area from the published copy =="
-scanshelf find "$work/published" --station north --start 2026-09-01 --end 2026-09-08
-scanshelf extract "$work/published" --station north --start 2026-09-01 --end 2026-09-03 \
+scanshelf find "$work/published" --station north --start 2026-09-27 --end 2026-10-03
+scanshelf extract "$work/published" --station north --start 2026-09-27 --end 2026-09-29 \
     --bbox-fraction 0.1 -o "$work/subset.laz"
 
 echo "== 7. health report =="

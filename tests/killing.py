@@ -25,6 +25,8 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from tests import factory
+
 PRELOAD = [
     "archive.cli", "archive.migrate", "archive.publish", "archive.catalog", "archive.grids",
     "archive.report.previews", "archive.faults", "tests.killing", "laspy", "zarr", "xarray",
@@ -66,8 +68,10 @@ def _child(argv: list[str], crash_at: str | None, crash_log: str | None, out: st
 
         traceback.print_exc()
         code = 3
+    import resource
     import sys
 
+    print(f"MAXRSS_KB {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}")
     sys.stdout.flush()
     sys.stderr.flush()
     os._exit(code)
@@ -102,6 +106,14 @@ class Run:
     output: str
     seconds: float
 
+    @property
+    def peak_mib(self) -> float | None:
+        """Peak resident memory of the run (includes the pre-imported libraries)."""
+        for line in self.output.splitlines():
+            if line.startswith("MAXRSS_KB "):
+                return int(line.split()[1]) / 1024
+        return None
+
 
 def run(argv: list[str], *, crash_at: str | None = None, crash_log: str | None = None,
         kill_after: float | None = None, env: dict | None = None, log_dir: Path) -> Run:
@@ -121,6 +133,17 @@ def run(argv: list[str], *, crash_at: str | None = None, crash_log: str | None =
 
 def crash_counts(log: Path) -> Counter:
     return Counter(log.read_text().split()) if log.exists() else Counter()
+
+
+def write_source(root: Path, which: str = "all") -> None:
+    """Four small scans over two stations in three formats (a few thousand points each)."""
+    if which in ("all", "first"):
+        factory.write_las(root / "north/a.las", 3000, factory.utc(2026, 9, 1, 6), seed=1)
+        factory.write_las(root / "south/S_20260901_180000.las", 3000, factory.utc(2026, 9, 1, 18),
+                          version="1.2", point_format=1, seed=3, extra=False)
+    if which in ("all", "second"):
+        factory.write_las(root / "north/b.laz", 3000, factory.utc(2026, 9, 1, 12), seed=2, point_format=7)
+        factory.write_csv(root / "south/exp 20260902T060000.csv", 2000, seed=4)
 
 
 # --- comparing shelves ------------------------------------------------------------------------

@@ -23,20 +23,10 @@ import pyarrow.parquet as pq
 import pytest
 
 from tests import factory, killing
+from tests.killing import write_source
 
 CRS = factory.SITE_CRS
 SEED = 20261202
-
-
-def write_source(root: Path, which: str = "all") -> None:
-    """Four small scans over two stations in three formats (a few thousand points each)."""
-    if which in ("all", "first"):
-        factory.write_las(root / "north/a.las", 3000, factory.utc(2026, 9, 1, 6), seed=1)
-        factory.write_las(root / "south/S_20260901_180000.las", 3000, factory.utc(2026, 9, 1, 18),
-                          version="1.2", point_format=1, seed=3, extra=False)
-    if which in ("all", "second"):
-        factory.write_las(root / "north/b.laz", 3000, factory.utc(2026, 9, 1, 12), seed=2, point_format=7)
-        factory.write_csv(root / "south/exp 20260902T060000.csv", 2000, seed=4)
 
 
 def migrate_args(source: Path, shelf: Path, previews: bool = False) -> list[str]:

@@ -16,7 +16,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pcsv
 
-from archive.points.coords import AxisEncoding
+from archive.points.coords import MAX_DIGITS, AxisEncoding
 from archive.sources.base import DamagedSource, ReadTally, SourceError, SourceHeader
 
 SAMPLE_BYTES = 256 * 1024
@@ -175,6 +175,20 @@ class AsciiReader:
             self.tally.bad_rows = bad_rows
             self.tally.problems.append(f"{bad_rows} malformed or non-numeric rows skipped")
 
+    def _check_range(self, name: str, text: pa.Array, values: np.ndarray, places: int) -> None:
+        """Digits a float64 or a DECIMAL(18, places) cannot hold would be changed silently: refuse them."""
+        if pc.any(pc.match_substring_regex(text, rf"\.\d{{{MAX_PLACES + 1},}}$")).as_py():
+            raise SourceError(
+                f"{self.relpath}: column {name} has values with more than {MAX_PLACES} decimals, "
+                "more than a 64-bit float keeps; round them in the export"
+            )
+        too_big = np.abs(values) >= 10.0 ** (MAX_DIGITS - places)
+        if too_big.any():
+            raise SourceError(
+                f"{self.relpath}: column {name} has values too large for 18 significant digits at {places} "
+                f"decimals (e.g. {values[too_big][0]:g}); check the column layout or set [ascii] places lower"
+            )
+
     def measure(self, chunk_size: int = 2_000_000) -> tuple[float, ...] | None:
         """Count and bounds of the readable rows (text has to be parsed to know them)."""
         from archive.sources.base import merge_bounds, table_bounds
@@ -199,6 +213,7 @@ class AsciiReader:
             if name in ("x", "y", "z"):
                 values = pc.cast(text, pa.float64()).to_numpy(zero_copy_only=False)
                 enc = self.header.axes[name]
+                self._check_range(name, text, values, enc.places)
                 columns[name], inexact = enc.from_float(values)
                 if inexact.any():
                     raise SourceError(

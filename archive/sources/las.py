@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+import struct
 from typing import Iterator
 
 import numpy as np
@@ -11,6 +13,9 @@ from archive.points.coords import AxisEncoding
 from archive.sources.base import DamagedSource, ReadTally, SourceError, SourceHeader
 
 LAS_SIGNATURE = b"LASF"
+RAW_HEADER = 375  # the LAS 1.4 public header block; older versions use its first 227 bytes
+VLR_HEADER = 54  # ASPRS LAS: reserved (2), user id (16), record id (2), length after header (2), description (32)
+DECIMAL_LIMIT = 10**18  # coordinates are stored as DECIMAL(18, k)
 
 
 def _laspy():
@@ -34,6 +39,8 @@ class LasReader:
 
     def _read_header(self) -> SourceHeader:
         laspy = _laspy()
+        with self._opener() as fh:
+            vlr_problems = _check_raw_header(fh, self.relpath, self.size)
         try:
             with self._opener() as fh, laspy.open(fh) as reader:
                 h = reader.header
@@ -54,7 +61,7 @@ class LasReader:
                     axes={a: AxisEncoding.for_las(h.scales[i], h.offsets[i]) for i, a in enumerate("xyz")},
                     adjusted_gps_time=bool(int(h.global_encoding.gps_time_type) == 1),
                     columns=tuple(self._renames(n) for n in h.point_format.dimension_names if n not in ("X", "Y", "Z")),
-                    problems=problems,
+                    problems=problems + vlr_problems,
                 )
                 self._offset = int(h.offset_to_point_data)
                 self._record = int(h.point_format.size)
@@ -152,6 +159,51 @@ class LasReader:
                 values = values.astype(np.uint8)
             columns[self._renames(name)] = pa.array(np.ascontiguousarray(values))
         return pa.table(columns)
+
+
+def _check_raw_header(fh, relpath: str, size: int) -> list[str]:
+    """Refuse header fields that would send a reader into huge loops, allocations or wrong numbers.
+
+    Offsets follow the ASPRS LAS 1.2/1.4 public header block (see tests/hostile.py). Returns the
+    problems that still leave the points readable (a VLR running into the point data).
+    """
+    raw = fh.read(RAW_HEADER)
+    if len(raw) < 227:
+        return []  # laspy names a short header itself
+    header_size, offset, n_vlr = struct.unpack_from("<HII", raw, 94)
+    if offset < header_size:
+        raise SourceError(f"{relpath}: the point data offset ({offset}) lies inside the {header_size}-byte header; the header is damaged")
+    if n_vlr * VLR_HEADER > offset - header_size:
+        raise SourceError(
+            f"{relpath}: the header declares {n_vlr} VLRs, but only {offset - header_size} bytes lie between "
+            "the header and the point data; the header is damaged"
+        )
+    for i, axis in enumerate("xyz"):
+        scale, shift = struct.unpack_from("<d", raw, 131 + 8 * i)[0], struct.unpack_from("<d", raw, 155 + 8 * i)[0]
+        if not (math.isfinite(scale) and scale > 0):
+            raise SourceError(f"{relpath}: the {axis} scale in the header is {scale!r}, not a positive number; the header is damaged")
+        if not math.isfinite(shift):
+            raise SourceError(f"{relpath}: the {axis} offset in the header is {shift!r}; the header is damaged")
+        enc = AxisEncoding.for_las(scale, shift)
+        if abs(enc._step) * 2**31 + abs(enc._shift) >= DECIMAL_LIMIT:
+            raise SourceError(
+                f"{relpath}: {axis} scale {scale!r} and offset {shift!r} give coordinates beyond 18 significant "
+                "digits; the header is damaged"
+            )
+    problems = []
+    pos = header_size
+    for i in range(n_vlr):
+        fh.seek(pos)
+        vlr = fh.read(VLR_HEADER)
+        if len(vlr) < VLR_HEADER:
+            break  # laspy reports the short file
+        end = pos + VLR_HEADER + struct.unpack_from("<H", vlr, 20)[0]
+        if end > offset:
+            user = vlr[2:18].rstrip(b"\0").decode("ascii", "replace")
+            problems.append(f"VLR {i} ({user}) runs {end - offset} bytes into the point data")
+            break
+        pos = end
+    return problems
 
 
 def looks_like_las(head: bytes) -> bool:
