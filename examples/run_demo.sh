@@ -4,9 +4,9 @@
 # Usage: bash examples/run_demo.sh [WORKDIR]   (needs `scanshelf` on PATH; `make demo` does that)
 set -euo pipefail
 work="${1:-demo-out}"
-rm -rf "$work"
 mkdir -p "$work"
 work="$(cd "$work" && pwd)"
+rm -rf "$work/source" "$work/shelf" "$work/published" "$work/subset.laz" "$work/report.html"
 
 echo "== 1. generate the demo source archive (an invented site, two stations) =="
 scanshelf demo "$work"
