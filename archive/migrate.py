@@ -210,6 +210,7 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
                 outcome = ScanOutcome(task.report.relpath, error=f"failed twice on the cluster: {outcome!r}")
             _record_outcome(outcome, task, ledger, result)
             bar.update(outcome.record.point_count if outcome.record else 0)
+            bar.set_postfix_str(f"{len(result.converted)}/{len(tasks)} scans", refresh=False)
         bar.close()
         _ingest_grids(fs, root, reports, recipe, shelf_path, ledger, result, storage_options)
         records = ledger.scans()

@@ -196,8 +196,9 @@ def shelf_state(root: Path) -> dict[str, object]:
     """Everything a shelf holds, with the one run-dependent value removed.
 
     Timestamps, found by diffing two clean runs of the same source: the Items' ``published``
-    (and its copy in the items index) and the ledger's ``updated``/``replaced`` columns.
-    Everything else is byte-identical between clean runs.
+    (and its copy in the items index) and the ledger's ``updated``/``replaced`` columns; the
+    health page ``index.html`` also names the shelf's folder. Everything else is byte-identical
+    between clean runs.
     """
     state: dict[str, object] = {}
     for p in sorted(root.rglob("*")):
@@ -212,6 +213,8 @@ def shelf_state(root: Path) -> dict[str, object]:
             state[rel] = _index_rows(p)
         elif rel.startswith("scans/items/"):
             state[rel] = _strip_published(json.loads(p.read_text()))
+        elif rel == "index.html":  # the health page names the shelf's own folder
+            state[rel] = hashlib.sha256(p.read_bytes().replace(str(root).encode(), b"<shelf>")).hexdigest()
         elif rel.startswith("points/") and rel.endswith(".parquet"):
             state[rel] = ("decoded", _points(p), "bytes", hashlib.sha256(p.read_bytes()).hexdigest())
         else:

@@ -68,3 +68,18 @@ def test_make_demo_example(tmp_path):
     done = _run([sys.executable, str(ROOT / "examples/make_demo.py"), str(tmp_path / "d")], cwd=tmp_path)
     assert done.returncode == 0, done.stderr[-3000:]
     assert "fault truncated" in done.stdout
+
+
+def test_demo_change_map_shows_the_thinning(demo_run):
+    import numpy as np
+
+    import archive
+
+    truth = DemoTruth.load(demo_run / "demo-truth.json")
+    north = sorted(f.scan_time for f in truth.point_files if f.station == "north" and f.fault is None)
+    change = archive.elevation_change(str(demo_run / "shelf"), "north", north[0], north[-1])
+    d = change.change.values
+    assert change.valid_cells > 1000
+    # the ice thins by centimetres a day (demo model); weeks apart, a tenth of the cells drop > 0.3 m
+    assert np.nanpercentile(d, 10) < -0.3
+    assert abs(np.nanpercentile(d, 90)) < 0.1  # rock and the far slope stay put

@@ -44,3 +44,4 @@ storage_option = click.option(
 recipe_option = click.option("--recipe", type=click.Path(exists=True, dir_okay=False), help="Recipe TOML file.")
 crs_option = click.option("--crs", help="CRS for files that declare none, e.g. EPSG:32633 (overrides the recipe).")
 quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
+json_option = click.option("--json", "as_json", is_flag=True, help="Print the result as JSON (for scripts); no progress bars.")

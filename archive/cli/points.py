@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import dataclasses
+import json
 import sys
 
 import click
 
-from archive.cli.common import crs_option, parse_storage_options, quiet_option, recipe_option, storage_option
+from archive.cli.common import (
+    crs_option, json_option, parse_storage_options, quiet_option, recipe_option, storage_option,
+)
 
 
 @click.command("survey")
@@ -17,7 +21,8 @@ from archive.cli.common import crs_option, parse_storage_options, quiet_option, 
 @click.option("--quick", is_flag=True, help="Read headers only (no point pass): faster, finds less.")
 @storage_option
 @quiet_option
-def survey_command(source, recipe, crs, output, quick, storage_options, quiet) -> None:
+@json_option
+def survey_command(source, recipe, crs, output, quick, storage_options, quiet, as_json) -> None:
     """Inventory a SOURCE archive: every file, its station, time, points, CRS and problems.
 
     SOURCE is a folder or any fsspec URL (s3://bucket/archive, ...). The whole walk always
@@ -30,10 +35,14 @@ def survey_command(source, recipe, crs, output, quick, storage_options, quiet) -
     from archive.survey import survey
 
     result = survey(source, recipe, crs, storage_options=parse_storage_options(storage_options),
-                    deep=not quick, progress=not quiet)
+                    deep=not quick, progress=not (quiet or as_json))
     result.write(output)
-    click.echo(result.summary())
-    click.echo(f"\nsurvey table written to {output}")
+    if as_json:
+        rows = result.table().drop_columns(["crs_wkt"]).to_pylist()
+        click.echo(json.dumps({"ok": result.ok, "output": output, "files": rows}, default=str))
+    else:
+        click.echo(result.summary())
+        click.echo(f"\nsurvey table written to {output}")
     sys.exit(0 if result.ok else 1)
 
 
@@ -51,8 +60,9 @@ def survey_command(source, recipe, crs, output, quick, storage_options, quiet) -
               help="Memory limit of each local worker; the sort of one scan stays within it.")
 @storage_option
 @quiet_option
+@json_option
 def migrate_command(source, shelf, recipe, crs, salvage, cell, no_previews, workers, scheduler, memory_per_worker,
-                    storage_options, quiet) -> None:
+                    storage_options, quiet, as_json) -> None:
     """Convert every scan in SOURCE into the local SHELF folder.
 
     Each scan becomes a spatially sorted Parquet file under points/, its elevation a time step
@@ -75,8 +85,8 @@ def migrate_command(source, shelf, recipe, crs, salvage, cell, no_previews, work
     from archive.migrate import migrate
 
     result = migrate(source, shelf, recipe, crs, salvage=salvage, cell=cell,
-                     storage_options=parse_storage_options(storage_options), progress=not quiet,
+                     storage_options=parse_storage_options(storage_options), progress=not (quiet or as_json),
                      previews=not no_previews, workers=workers, scheduler=scheduler,
                      memory_per_worker=parse_bytes(memory_per_worker))
-    click.echo(result.summary())
+    click.echo(json.dumps(dataclasses.asdict(result) | {"ok": result.ok}) if as_json else result.summary())
     sys.exit(0 if result.ok else 1)
