@@ -18,7 +18,6 @@ from datetime import datetime
 from pathlib import Path
 
 import numpy as np
-import pyarrow.compute as pc
 
 from archive import layout
 from archive.cluster import DEFAULT_MEMORY_PER_WORKER, DaskExecutor, SerialExecutor
@@ -30,7 +29,7 @@ from archive.points.hilbert import SiteGrid
 from archive.points.write import write_scan
 from archive.recipe import Recipe, load_recipe
 from archive.records import ScanRecord
-from archive.sources import DamagedSource, SourceError, open_points
+from archive.sources import SourceError, open_points
 from archive.storage import filesystem
 from archive.survey import FileReport, inspect_file, mark_duplicates, walk_source
 from archive.timeutil import adjusted_gps_to_utc

@@ -20,7 +20,7 @@ import pyarrow.parquet as pq
 
 from archive.layout import check_station
 from archive.recipe import Recipe, load_recipe
-from archive.sources import DamagedSource, SourceError, classify, open_points, scan_time_of
+from archive.sources import SourceError, classify, open_points, scan_time_of
 from archive.storage import filesystem, join
 from archive.timeutil import parse_stamp
 

@@ -110,7 +110,7 @@ def main() -> None:
     assert mig["points"] == n and not mig["failed"], mig
     shelf_bytes = sum(p.stat().st_size for p in (work / "shelf" / "points").rglob("*.parquet"))
 
-    laz = _child(LAZ.format(src=str(las), dst=str(work / "same.laz")))
+    _child(LAZ.format(src=str(las), dst=str(work / "same.laz")))
     laz_bytes = (work / "same.laz").stat().st_size
     plain_off = _child(PLAIN.format(src=str(las), dst=str(work / "plain.parquet"), dictionary=False))
     plain_on = _child(PLAIN.format(src=str(las), dst=str(work / "plain-dict.parquet"), dictionary=True))

@@ -23,7 +23,6 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..records import ColumnInfo
-from .coords import units_of
 from .hilbert import SiteGrid
 from .sort import COORDS, sorted_row_groups
 
