@@ -44,14 +44,16 @@ class DaskExecutor:
         from dask.distributed import Client, LocalCluster
 
         self._cluster = None
+        # not the default client: the coordinator's own small computations (cube indexes, catalog)
+        # must run here, not queue on the cluster behind the conversions
         if scheduler:
-            self.client = Client(scheduler)
+            self.client = Client(scheduler, set_as_default=False)
         else:
             self._cluster = LocalCluster(
                 n_workers=workers or 2, threads_per_worker=1, processes=True,
                 memory_limit=memory_per_worker, dashboard_address="127.0.0.1:0",
             )
-            self.client = Client(self._cluster)
+            self.client = Client(self._cluster, set_as_default=False)
         self.workers = len(self.client.scheduler_info().get("workers", {})) or (workers or 1)
         self.dashboard_link = self.client.dashboard_link
         self.memory_per_worker = memory_per_worker

@@ -172,6 +172,7 @@ def migrate(
              memory_budget=memory_budget, row_group_points=row_group_points)
     finally:
         executor.close()
+    _remove_leftovers(shelf_path)  # a worker killed mid-scan leaves its temporary file; the scan was redone
     return result
 
 
@@ -216,10 +217,11 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
         result.scans_total = len(records)
         if catalog:
             _write_catalog(shelf_path, records, result, recipe)
-            if records and (result.converted or result.retired or not (shelf_path / layout.REPORT).exists()):
+            if records and _report_stale(shelf_path):
                 from archive.report import write_index_html
 
                 write_index_html(shelf_path)
+                crash_point("report.written")
 
 
 # --- survey and planning --------------------------------------------------------------------
@@ -522,6 +524,13 @@ def _write_catalog(shelf: Path, records: list[ScanRecord], result: MigrateResult
         build_catalog(str(shelf), records, settings=recipe.catalog)
 
 
+def _report_stale(shelf: Path) -> bool:
+    """The health page is older than the items index (judged from the files, so that the re-run of
+    a killed migration refreshes it as the whole run would have)."""
+    report, index = shelf / layout.REPORT, shelf / layout.SCANS_INDEX
+    return not report.exists() or (index.exists() and report.stat().st_mtime_ns < index.stat().st_mtime_ns)
+
+
 def _catalog_lag(shelf: Path, records: list[ScanRecord]) -> tuple[set[str], set[str]]:
     """Scans the ledger holds but the index lacks (or holds with other points), and index rows the
     ledger no longer has: what a run killed after its ledger commits left uncatalogued."""
@@ -627,7 +636,7 @@ def _remove_leftovers(shelf: Path) -> None:
 
     for pattern in ("points/**/*.part-*", "previews/*.part-*", "points/**/.scanshelf-spill-*", "scans/**/*.part-*",
                     "scans/items.parquet.part-*", "grids/collection.json.part-*", "catalog.json.part-*",
-                    "grids/*.tmp-*", "grids/**/*.partial", "survey.parquet.part"):
+                    "grids/*.tmp-*", "grids/**/*.partial", "survey.parquet.part", f".{layout.REPORT}.part-*"):
         for p in shelf.glob(pattern):
             if p.is_dir():
                 shutil.rmtree(p, ignore_errors=True)

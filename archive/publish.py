@@ -6,15 +6,22 @@ finds the root finds everything it points to. Files already at the destination w
 size and SHA-256 (from the previous manifest, or by hashing the remote copy) are skipped, so an
 interrupted publish resumes where it stopped. The ledger never leaves the machine.
 Storage options may hold credentials: they are passed to fsspec only, never written or logged.
+
+Storage fails now and then: every upload is retried with exponential back-off until it reads
+back right, and a publish that still cannot place a file names exactly the files missing. A
+local file that no longer matches the shelf's own catalog (bit rot since the migration) is
+never uploaded, so a good remote copy is not replaced by a damaged one.
 """
 
 from __future__ import annotations
 
 import hashlib
 import io
+import json
 import logging
 import os
 import posixpath
+import time
 from collections.abc import Callable, Iterable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -26,6 +33,9 @@ import pyarrow.parquet as pq
 from fsspec.implementations.local import LocalFileSystem
 
 from archive import layout
+from archive.catalog.grids import store_fingerprint
+from archive.catalog.store import Shelf, multihash_sha256, resolve_href
+from archive.faults import crash_point
 from archive.query.shelf import redact
 
 log = logging.getLogger(__name__)
@@ -33,10 +43,26 @@ log = logging.getLogger(__name__)
 CHUNK = 1 << 20
 LOCAL_ONLY = (layout.LEDGER,)  # and its SQLite side files: the ledger stays local
 PHASES = ("data", "zarr metadata", "catalog", "manifest", "root")
+RETRIES = 4  # attempts per file (upload + read-back) before it is reported missing
+BACKOFF = 0.5  # seconds before the second attempt; doubles each time
+TEMP_SUFFIX = ".publishing"
+CREDENTIAL_VARIABLES = (  # environment credentials a storage client may echo in an error
+    "AWS_ACCESS_KEY_ID", "AWS_SECRET_ACCESS_KEY", "AWS_SESSION_TOKEN", "AZURE_STORAGE_KEY",
+    "AZURE_STORAGE_CONNECTION_STRING", "AZURE_STORAGE_SAS_TOKEN", "GOOGLE_APPLICATION_CREDENTIALS",
+)
 
 
 class PublishError(RuntimeError):
-    """A publish step failed; the message names the file and never holds credentials."""
+    """A publish step failed; the message names the file and never holds credentials.
+
+    ``missing`` lists the shelf-relative files not at the destination (or not verified there);
+    ``damaged`` the local files that no longer match the shelf's catalog.
+    """
+
+    def __init__(self, message: str, missing: Iterable[str] = (), damaged: Iterable[str] = ()) -> None:
+        super().__init__(message)
+        self.missing = list(missing)
+        self.damaged = list(damaged)
 
 
 @dataclass(frozen=True)
@@ -104,10 +130,22 @@ def _sha256(fs: fsspec.AbstractFileSystem, path: str) -> str:
 
 
 def _scrub(text: str, options: dict) -> str:
-    for value in _strings(options):
+    secrets = [*_strings(options), *(os.environ.get(v, "") for v in CREDENTIAL_VARIABLES)]
+    for value in sorted(secrets, key=len, reverse=True):
         if len(value) >= 4:
             text = text.replace(value, "***")
     return text
+
+
+def _retry(action: Callable[[], Any], retries: int, backoff: float) -> Any:
+    """``action()``, tried again after ``backoff``, 2×, 4×, ... seconds while it raises."""
+    for attempt in range(retries):
+        try:
+            return action()
+        except Exception:
+            if attempt == retries - 1:
+                raise
+            time.sleep(backoff * 2**attempt)
 
 
 def _strings(obj: Any) -> Iterable[str]:
@@ -165,13 +203,16 @@ def publish(
     verify: bool = True,
     rehash: bool = False,
     progress: Callable[[int], Any] | None = None,
+    retries: int = RETRIES,
+    backoff: float = BACKOFF,
 ) -> PublishReport:
     """Copy ``shelf`` to ``dest`` (any fsspec URL) and return what was (or would be) uploaded.
 
     Files at ``dest`` whose size and checksum the previous manifest vouches for are skipped
     without reading them; ``rehash=True`` hashes every same-size remote copy instead (slower,
     catches changes made behind the manifest's back). ``progress`` is called with a byte
-    count as files finish (the CLI feeds a tqdm bar).
+    count as files finish (the CLI feeds a tqdm bar). Each file gets ``retries`` attempts,
+    ``backoff`` seconds apart at first and twice as long each time.
     Raises PublishError when a written file does not read back with its size and checksum;
     the root catalog is then not written, so readers never see the broken copy.
     """
@@ -199,7 +240,7 @@ def publish(
         digests = dict(zip(paths, pool.map(lambda p: _sha256(src_fs, f"{prefix}{p}"), paths)))
 
     try:
-        remote_sizes = _remote_sizes(dst_fs, dst_root)
+        remote_sizes = _retry(lambda: _remote_sizes(dst_fs, dst_root), retries, backoff)
         manifest = _remote_manifest(dst_fs, dst_root) if remote_sizes else {}
     except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
         raise PublishError(f"{shown}: cannot list the destination: {_scrub(str(e), options)}") from None
@@ -209,7 +250,10 @@ def publish(
             return False
         if not rehash and manifest.get(path) == (local[path], digests[path]):
             return True
-        return _sha256(dst_fs, f"{dst_root}/{path}") == digests[path]
+        try:
+            return _sha256(dst_fs, f"{dst_root}/{path}") == digests[path]
+        except Exception:  # noqa: BLE001 (unreadable remote copy: upload it again)
+            return False
 
     with ThreadPoolExecutor(max_workers=workers) as pool:
         same = dict(zip(paths, pool.map(unchanged, paths)))
@@ -219,29 +263,38 @@ def publish(
     manifest_sha = hashlib.sha256(manifest_bytes).hexdigest()
     if dry_run:
         return report
+    uploads = {e.path for e in entries if e.action == "upload"}
+    damaged = _damaged(Shelf(os.fspath(shelf), source_options), local, digests, uploads, manifest)
+    if damaged:
+        raise PublishError(
+            f"{shelf}: {len(damaged)} local file(s) no longer match the shelf's own catalog (damaged since "
+            f"the migration?); nothing was uploaded and {shown} is unchanged. Run `scanshelf verify {shelf}`, "
+            f"then restore or re-migrate them (or, if they were changed on purpose, `scanshelf catalog {shelf}`):"
+            "\n  " + "\n  ".join(damaged),
+            damaged=damaged,
+        )
 
     local_dst = isinstance(dst_fs, LocalFileSystem)
+    if local_dst:  # temporary files of a publish that was killed
+        for stale in [p for p in remote_sizes if posixpath.basename(p).startswith(".") and p.endswith(TEMP_SUFFIX)]:
+            dst_fs.rm_file(f"{dst_root}/{stale}")
 
     def put(path: str) -> None:
         target = f"{dst_root}/{path}"
         src = f"{prefix}{path}"
-        try:
-            tmp = target
-            if local_dst:  # object stores have no folders (and makedirs there creates buckets)
-                dst_fs.makedirs(posixpath.dirname(target), exist_ok=True)
-                tmp = f"{posixpath.dirname(target)}/.{posixpath.basename(target)}.publishing"
-            if isinstance(src_fs, LocalFileSystem):
-                dst_fs.put_file(src, tmp)
-            else:
-                with src_fs.open(src, "rb") as r, dst_fs.open(tmp, "wb") as w:
-                    while chunk := r.read(CHUNK):
-                        w.write(chunk)
-            if tmp != target:
-                dst_fs.mv(tmp, target)
-        except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
-            raise PublishError(f"{shown}/{path}: upload failed: {type(e).__name__}: {_scrub(str(e), options)}") from None
-        if progress is not None:
-            progress(local[path])
+        tmp = target
+        if local_dst:  # object stores have no folders (and makedirs there creates buckets)
+            dst_fs.makedirs(posixpath.dirname(target), exist_ok=True)
+            tmp = f"{posixpath.dirname(target)}/.{posixpath.basename(target)}{TEMP_SUFFIX}"
+        if isinstance(src_fs, LocalFileSystem):
+            dst_fs.put_file(src, tmp)
+        else:
+            with src_fs.open(src, "rb") as r, dst_fs.open(tmp, "wb") as w:
+                while chunk := r.read(CHUNK):
+                    w.write(chunk)
+        if tmp != target:
+            crash_point("publish.temp")
+            dst_fs.mv(tmp, target)
 
     def check(entry: FileEntry) -> str | None:
         target = f"{dst_root}/{entry.path}"
@@ -255,26 +308,85 @@ def publish(
             return f"{entry.path}: cannot read back: {type(e).__name__}: {_scrub(str(e), options)}"
         return None
 
+    def send(entry: FileEntry) -> str | None:
+        """Upload and read back until the copy verifies; the last problem if it never does."""
+        problem = None
+        for attempt in range(retries):
+            if attempt:
+                time.sleep(backoff * 2 ** (attempt - 1))
+            try:
+                put(entry.path)
+                if hasattr(dst_fs, "invalidate_cache"):
+                    dst_fs.invalidate_cache(f"{dst_root}/{entry.path}")
+                problem = check(entry)
+            except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
+                problem = f"{entry.path}: upload failed: {type(e).__name__}: {_scrub(str(e), options)}"
+            if problem is None:
+                crash_point("publish.file")
+                if progress is not None:
+                    progress(entry.size)
+                return None
+            log.warning("%s: attempt %d of %d: %s", shown, attempt + 1, retries, problem)
+        return problem
+
     for phase in range(len(PHASES)):
         todo = [e for e in entries if e.action == "upload" and phase_of(e.path) == phase]
         if phase == 3:  # the manifest of this publish, just before the root
-            _write_manifest(dst_fs, dst_root, manifest_bytes, local_dst, shown, options)
+            try:
+                _retry(lambda: _write_manifest(dst_fs, dst_root, manifest_bytes, local_dst, shown, options),
+                       retries, backoff)
+            except PublishError as e:
+                raise PublishError(f"{e}; the root catalog was not written", missing=[layout.MANIFEST]) from None
+            crash_point("publish.manifest")
             continue
         if not todo:
             continue
         with ThreadPoolExecutor(max_workers=workers) as pool:
-            list(pool.map(put, [e.path for e in todo]))
-            if hasattr(dst_fs, "invalidate_cache"):
-                dst_fs.invalidate_cache()
-            problems = [p for p in pool.map(check, todo) if p]
+            problems = [(e.path, p) for e, p in zip(todo, pool.map(send, todo)) if p]
         if problems:
+            later = [e.path for e in entries if e.action == "upload" and phase_of(e.path) > phase]
             raise PublishError(
-                f"{shown}: {len(problems)} file(s) did not verify; the root catalog was not "
-                "written. Run publish again to retry:\n  " + "\n  ".join(problems)
+                f"{shown}: {len(problems)} file(s) did not verify after {retries} attempts each and are missing "
+                f"there; the root catalog was not written (readers still see the previous copy) and {len(later)} "
+                "file(s) of later phases wait. Run publish again to retry:\n  " + "\n  ".join(p for _, p in problems),
+                missing=sorted(path for path, _ in problems),
             )
+        crash_point("publish.phase")
         log.info("%s: %s phase: %d file(s) uploaded and verified", shown, PHASES[phase], len(todo))
     log.info("%s: published (manifest sha256 %s)", shown, manifest_sha[:12])
     return report
+
+
+def _damaged(shelf: Shelf, local: dict[str, int], digests: dict[str, str], uploads: set[str],
+             remote: dict[str, tuple[int, str]]) -> list[str]:
+    """Files to upload whose bytes no longer match the checksums the shelf's own catalog records.
+
+    Plain assets carry ``file:checksum``; a Zarr store carries one fingerprint over all its
+    objects, so for a store the objects changed since the last publish are named.
+    """
+    docs = [p for p in digests if p.endswith(".json") and (
+        p.startswith("scans/items/") or p in (layout.SCANS_COLLECTION, layout.GRIDS_COLLECTION))]
+    found: list[str] = []
+    for doc_path in docs:
+        try:
+            doc = json.loads(shelf.read_bytes(doc_path))
+            assets = list((doc.get("assets") or {}).values())
+        except (ValueError, RecursionError, AttributeError):
+            continue  # `scanshelf verify` reports unreadable documents
+        for asset in assets:
+            try:
+                target = resolve_href(doc_path, str(asset.get("href", "")))
+            except ValueError:
+                continue
+            if target in uploads and asset.get("file:checksum") not in (None, multihash_sha256(digests[target])):
+                found.append(f"{target}: does not match its catalog checksum")
+            members = [p for p in local if p.startswith(target + "/")]
+            want = asset.get("scanshelf:store_checksum")
+            if want and uploads & set(members) and store_fingerprint(shelf, target)[1] != want:
+                changed = [p for p in members if remote.get(p, (None, None))[1] not in (None, digests.get(p))]
+                found.append(f"{target}: does not match its catalog checksum"
+                             + (f" (changed since the last publish: {', '.join(sorted(changed))})" if changed else ""))
+    return sorted(found)
 
 
 def _manifest_bytes(entries: list[FileEntry]) -> bytes:

@@ -16,6 +16,7 @@ import hashlib
 import json
 import multiprocessing as mp
 import os
+import re
 import sqlite3
 import time
 from collections import Counter
@@ -63,7 +64,7 @@ def _child(argv: list[str], crash_at: str | None, crash_log: str | None, out: st
             cli.main(args=argv, prog_name="scanshelf", standalone_mode=True)
     except SystemExit as exc:
         code = exc.code if isinstance(exc.code, int) else 1
-    except BaseException as exc:  # an unexpected traceback is a finding: show it, exit non-zero
+    except BaseException:  # noqa: BLE001 (an unexpected traceback is a finding: show it, exit non-zero)
         import traceback
 
         traceback.print_exc()
@@ -196,9 +197,9 @@ def shelf_state(root: Path) -> dict[str, object]:
     """Everything a shelf holds, with the one run-dependent value removed.
 
     Timestamps, found by diffing two clean runs of the same source: the Items' ``published``
-    (and its copy in the items index) and the ledger's ``updated``/``replaced`` columns; the
-    health page ``index.html`` also names the shelf's folder. Everything else is byte-identical
-    between clean runs.
+    (and its copy in the items index), the ledger's ``updated``/``replaced`` columns, and the
+    "made <time>" line of the health page ``index.html`` (which also names the shelf's folder).
+    Everything else is byte-identical between clean runs.
     """
     state: dict[str, object] = {}
     for p in sorted(root.rglob("*")):
@@ -213,8 +214,9 @@ def shelf_state(root: Path) -> dict[str, object]:
             state[rel] = _index_rows(p)
         elif rel.startswith("scans/items/"):
             state[rel] = _strip_published(json.loads(p.read_text()))
-        elif rel == "index.html":  # the health page names the shelf's own folder
-            state[rel] = hashlib.sha256(p.read_bytes().replace(str(root).encode(), b"<shelf>")).hexdigest()
+        elif rel == "index.html":  # the health page names the shelf's folder and the time it was made
+            page = p.read_bytes().replace(str(root).encode(), b"<shelf>")
+            state[rel] = hashlib.sha256(re.sub(rb"made \d{4}-\d\d-\d\d \d\d:\d\d UTC", b"made <time>", page)).hexdigest()
         elif rel.startswith("points/") and rel.endswith(".parquet"):
             state[rel] = ("decoded", _points(p), "bytes", hashlib.sha256(p.read_bytes()).hexdigest())
         else:

@@ -4,10 +4,12 @@ time and memory, and the rest of the run goes on. Plus property tests of the rea
 
 from __future__ import annotations
 
+import functools
 import io
 import json
 import re
 import sqlite3
+import tempfile
 from decimal import Decimal
 from pathlib import Path
 
@@ -90,25 +92,13 @@ def test_survey_names_each_bad_file_and_cause(corpus_run) -> None:
 
 # --- property tests: readers never fail unclearly ----------------------------------------------
 
-def _base_las() -> bytes:
-    buf = io.BytesIO()
-    path = Path(__file__).parent / "__hostile_base.las"
-    try:
-        factory.write_las(path, 200, factory.utc(2026, 9, 1, 6), seed=3)
-        buf.write(path.read_bytes())
-    finally:
-        path.unlink(missing_ok=True)
-    return buf.getvalue()
-
-
-BASE_LAS = None
-
-
+@functools.lru_cache(maxsize=1)
 def _las_bytes() -> bytes:
-    global BASE_LAS
-    if BASE_LAS is None:
-        BASE_LAS = _base_las()
-    return BASE_LAS
+    """A small valid LAS 1.4 file (with a CRS VLR and extra bytes) to damage."""
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "base.las"
+        factory.write_las(path, 200, factory.utc(2026, 9, 1, 6), seed=3)
+        return path.read_bytes()
 
 
 class _Bytes:

@@ -71,7 +71,7 @@ def work(tmp_path_factory):
     counts = killing.crash_counts(log)
     # every named point of the write path is reached in a clean run
     assert {"survey.written", "points.row_group", "points.written", "points.renamed", "grid.epoch",
-            "ledger.committed", "catalog.file", "zarr.object"} <= set(counts), counts
+            "ledger.committed", "catalog.file", "zarr.object", "report.written"} <= set(counts), counts
     return base, source, ref, killing.shelf_state(ref), counts, clean.seconds
 
 
@@ -86,7 +86,8 @@ def _spread(count: int, k: int) -> list[int]:
 
 def kill_plan(counts) -> list[str]:
     picks = {"survey.written": 1, "points.row_group": 1, "points.written": 2, "points.renamed": 2,
-             "grid.epoch": 2, "ledger.committed": 2, "catalog.file": 3, "zarr.object": 4}
+             "grid.epoch": 2, "ledger.committed": 2, "catalog.file": 3, "zarr.object": 4,
+             "report.written": 1}
     return [f"{name}:{n}" for name, k in picks.items() for n in _spread(counts[name], k)]
 
 
@@ -104,7 +105,7 @@ def _cycle(base: Path, source: Path, name: str, kills: list[dict]) -> tuple[str,
 
 
 def test_migrate_killed_at_crash_points_resumes_to_the_clean_shelf(work) -> None:
-    base, source, ref, want, counts, _ = work
+    base, source, _, want, counts, _ = work
     plan = kill_plan(counts)
     assert len(plan) >= 16, plan
     with ThreadPoolExecutor(max_workers=2) as pool:
@@ -118,7 +119,7 @@ def test_migrate_killed_at_crash_points_resumes_to_the_clean_shelf(work) -> None
 
 
 def test_migrate_killed_after_random_delays_and_while_recovering(work) -> None:
-    base, source, ref, want, counts, seconds = work
+    base, source, _, want, _, seconds = work
     rng = random.Random(SEED)
     cycles = {f"delay-{i}": [{"kill_after": rng.uniform(0.5, max(1.0, seconds))}] for i in range(3)}
     # a kill during the recovery of an earlier kill
@@ -167,15 +168,15 @@ def test_previews_survive_a_kill(tmp_path) -> None:
 
 def test_the_real_command_line_killed_and_rerun(work, tmp_path) -> None:
     """The installed `scanshelf` script itself, in a plain subprocess, killed mid-run."""
-    base, source, ref, want, counts, _ = work
+    _, source, _, want, _, _ = work
     exe = Path(sys.executable).with_name("scanshelf")
     assert exe.exists(), f"{exe} missing: pip install -e . first"
     shelf = tmp_path / "shelf"
     env = {**os.environ, "SCANSHELF_CRASH_AT": "points.renamed:2", "MPLBACKEND": "Agg"}
-    killed = subprocess.run([str(exe), *migrate_args(source, shelf)], env=env, capture_output=True, timeout=300)
+    killed = subprocess.run([str(exe), *migrate_args(source, shelf)], env=env, capture_output=True, timeout=300, check=False)
     assert killed.returncode == -signal.SIGKILL, killed.stderr.decode()
     env.pop("SCANSHELF_CRASH_AT")
-    again = subprocess.run([str(exe), *migrate_args(source, shelf)], env=env, capture_output=True, timeout=300)
+    again = subprocess.run([str(exe), *migrate_args(source, shelf)], env=env, capture_output=True, timeout=300, check=False)
     assert again.returncode == 0, again.stderr.decode()
     check_consistent(shelf)
     assert killing.differences(killing.shelf_state(shelf), want) == []
@@ -188,7 +189,7 @@ def _dest_state(root: Path) -> dict[str, str]:
 
 
 def test_publish_killed_anywhere_resumes_to_the_clean_copy(work) -> None:
-    base, source, ref, want, counts, _ = work
+    base, _, ref, _, _, _ = work
     clean = base / "published" / "clean"
     log = base / "publish-crash.log"
     first = killing.run(["publish", str(ref), str(clean), "-q", "--workers", "2"], crash_log=str(log),

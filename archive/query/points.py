@@ -111,13 +111,20 @@ def axes_of(metadata: pq.FileMetaData) -> dict[str, AxisEncoding]:
     return {k: AxisEncoding.from_dict(v) for k, v in axes.items()}
 
 
+def _exact(data: bytes, scan: ScanFile, start: int, end: int) -> bytes:
+    """Storage that returns fewer bytes than asked must not be decoded as if it were whole."""
+    if len(data) != end - start:
+        raise OSError(f"{scan.path}: short read, {len(data)} of {end - start} bytes at {start}; nothing was used, try again")
+    return data
+
+
 def open_footer(fs: AbstractFileSystem, scan: ScanFile) -> tuple[pq.ParquetFile, _SparseFile]:
     """One tail request (two if the footer is larger than the guess).
 
     Files of one shelf have similar footers, so the guess grows to the largest footer seen on
     this filesystem (``tail_hint``): only the first large footer costs a second request.
     """
-    sparse = _SparseFile(scan.size, lambda s, e: fs.cat_file(scan.path, start=s, end=e))
+    sparse = _SparseFile(scan.size, lambda s, e: _exact(fs.cat_file(scan.path, start=s, end=e), scan, s, e))
     start = max(0, scan.size - getattr(fs, "tail_hint", FOOTER_GUESS))
     tail = fs.cat_file(scan.path, start=start, end=scan.size)
     if len(tail) != scan.size - start or tail[-4:] != b"PAR1":
@@ -128,7 +135,7 @@ def open_footer(fs: AbstractFileSystem, scan: ScanFile) -> tuple[pq.ParquetFile,
     need = int.from_bytes(tail[-8:-4], "little") + 8
     if need > len(tail):  # one block, so pyarrow's single footer read is served from memory
         head = max(0, scan.size - need)
-        tail = fs.cat_file(scan.path, start=head, end=start) + tail
+        tail = _exact(fs.cat_file(scan.path, start=head, end=start), scan, head, start) + tail
         start = head
         if hasattr(fs, "tail_hint"):
             fs.tail_hint = max(fs.tail_hint, need + 4096)
@@ -186,11 +193,14 @@ def read_scan(
     runs = _coalesce(ranges)
     if runs:
         starts, ends = [s for s, _ in runs], [e for _, e in runs]
-        for start, data in zip(starts, fs.cat_ranges([scan.path] * len(runs), starts, ends, on_error="raise")):
-            sparse.add(start, data)
+        for start, end, data in zip(starts, ends, fs.cat_ranges([scan.path] * len(runs), starts, ends, on_error="raise")):
+            sparse.add(start, _exact(data, scan, start, end))
     axes = axes_of(md)
     if groups:
-        table = pf.read_row_groups(groups, columns=fetch)
+        try:
+            table = pf.read_row_groups(groups, columns=fetch)
+        except pa.ArrowException as e:
+            raise ValueError(f"{scan.path}: cannot be decoded ({e}); the file may be damaged: run `scanshelf verify`") from None
     else:
         table = pf.schema_arrow.empty_table().select(fetch)
     if bbox is not None:

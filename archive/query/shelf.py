@@ -30,6 +30,17 @@ from archive.query.iostats import CountingFileSystem, IOStats
 from archive.query.points import BBox, ScanFile, read_scan
 
 TimeLike = datetime | date | str | np.datetime64 | pd.Timestamp | None
+MAX_JSON_BYTES = 8 << 20  # a root catalog is a few KB; a larger one is refused unread
+
+
+def parse_json(data: bytes | str, where: str) -> Any:
+    """JSON from an untrusted shelf: malformed or deeply nested text is refused, naming the file."""
+    try:
+        return json.loads(data)
+    except RecursionError:
+        raise ValueError(f"{where}: JSON nested too deeply; refused") from None
+    except ValueError as e:
+        raise ValueError(f"{where}: not valid JSON ({e}); the file may be damaged or half-written") from None
 
 
 def redact(url: str) -> str:
@@ -89,7 +100,7 @@ class Scan:
     def item(self):
         import pystac
 
-        return pystac.Item.from_dict(json.loads(self.item_json), migrate=False)
+        return pystac.Item.from_dict(parse_json(self.item_json, f"item_json of {self.id}"), migrate=False)
 
     @property
     def file(self) -> ScanFile:
@@ -243,12 +254,18 @@ class Shelf:
         self.io = IOStats()
         self.fs = CountingFileSystem(root.rstrip("/"), inner, self.io)
         try:
-            self.catalog = json.loads(self.fs.cat_file(layout.CATALOG))
+            data = self.fs.cat_file(layout.CATALOG, start=0, end=MAX_JSON_BYTES + 1)
         except FileNotFoundError:
             raise FileNotFoundError(
                 f"{self.url}: no {layout.CATALOG} at this URL; give the shelf's root "
                 "(the folder holding catalog.json), or publish the shelf there first"
             ) from None
+        where = f"{self.url}/{layout.CATALOG}"
+        if len(data) > MAX_JSON_BYTES:
+            raise ValueError(f"{where} is larger than {MAX_JSON_BYTES:,} bytes; refused (a root catalog is a few KB)")
+        self.catalog = parse_json(data, where)
+        if not isinstance(self.catalog, dict):
+            raise ValueError(f"{where}: not a STAC Catalog object; refused")
 
     def __repr__(self) -> str:
         return f"<Shelf {self.url}>"
@@ -263,7 +280,13 @@ class Shelf:
                 f"{self.url}: no {layout.SCANS_INDEX}; this shelf has no scans index "
                 "(re-run the migration's catalog step)"
             ) from None
-        return pq.read_table(io.BytesIO(data))
+        try:
+            return pq.read_table(io.BytesIO(data))
+        except pa.ArrowException as e:
+            raise ValueError(
+                f"{self.url}/{layout.SCANS_INDEX}: not a readable Parquet file ({e}); the shelf may be "
+                "half-published or damaged: run `scanshelf verify` on it"
+            ) from None
 
     @cached_property
     def crs(self):
@@ -275,7 +298,7 @@ class Shelf:
             if codes:
                 return CRS.from_user_input(codes[0])
         for text in self.index["item_json"].to_pylist()[:1]:
-            props = json.loads(text).get("properties", {})
+            props = parse_json(text, f"{self.url}/{layout.SCANS_INDEX} item_json").get("properties", {})
             for key in ("proj:projjson", "proj:wkt2"):
                 if props.get(key):
                     return CRS.from_user_input(props[key])
