@@ -66,7 +66,7 @@ class DaskExecutor:
             return
         futures = self.client.map(fn, tasks, retries=1, pure=False)
         index = {f.key: t for f, t in zip(futures, tasks)}
-        for future in as_completed(futures):
+        for future in as_completed(futures, loop=self.client.loop):
             task = index[future.key]
             try:
                 yield task, future.result()

@@ -79,5 +79,5 @@ def test_grid_and_change_commands(tmp_path):
     assert "stable_cells: 400" in out.output and tif.exists()
     median = float(next(line for line in out.output.splitlines() if line.startswith("stable_median_m")).split(": ")[1])
     assert abs(median + 0.25) < 0.01  # offsets by time: T0 +0.25 m, T0+20 d +0.00 m
-    assert "Example:" in grid_command.help and "Example:" in change_command.help
+    assert "Example" in grid_command.help and "Example" in change_command.help
     assert xr.open_zarr(tmp_path / "grids" / "north.zarr").sizes["time"] == 3
