@@ -48,6 +48,7 @@ def grid_command(shelf, cell, station, margin, no_series, series_only, storage_o
                 continue
             write_series(cube if "://" not in shelf else fs.unstrip_protocol(cube), parse_storage_options(storage_options))
             click.echo(f"{cube}: time-series copy rebuilt")
+        _refresh_catalog(shelf, parse_storage_options(storage_options))
         return
 
     results = grid_shelf(shelf, cell=cell, station=station, margin=margin, series=not no_series,
@@ -56,6 +57,18 @@ def grid_command(shelf, cell, station, margin, no_series, series_only, storage_o
         s = r.spec
         click.echo(f"{r.cube}: {r.scans} scans, {s.nx} x {s.ny} cells of {s.cell:g} m from "
                    f"({s.x0:.3f}, {s.y0:.3f}); {r.points} points binned, {r.outside} outside the grid")
+    _refresh_catalog(shelf, parse_storage_options(storage_options))
+
+
+def _refresh_catalog(shelf: str, storage_options: dict) -> None:
+    """Changed cubes change their fingerprints: the grids collection must say so, or verify and publish refuse."""
+    from archive import layout
+    from archive.catalog import update_catalog
+    from archive.storage import filesystem, join
+
+    fs, root = filesystem(shelf, storage_options)
+    if fs.exists(join(root, layout.CATALOG)):
+        update_catalog(shelf, [], storage_options=storage_options)
 
 
 @click.command("change")
