@@ -15,6 +15,7 @@ from archive.sources.base import DamagedSource, ReadTally, SourceError, SourceHe
 LAS_SIGNATURE = b"LASF"
 RAW_HEADER = 375  # the LAS 1.4 public header block; older versions use its first 227 bytes
 VLR_HEADER = 54  # ASPRS LAS: reserved (2), user id (16), record id (2), length after header (2), description (32)
+EVLR_HEADER = 60  # ASPRS LAS 1.4: as a VLR header but with an 8-byte length
 DECIMAL_LIMIT = 10**18  # coordinates are stored as DECIMAL(18, k)
 
 
@@ -189,6 +190,13 @@ def _check_raw_header(fh, relpath: str, size: int) -> list[str]:
             raise SourceError(
                 f"{relpath}: {axis} scale {scale!r} and offset {shift!r} give coordinates beyond 18 significant "
                 "digits; the header is damaged"
+            )
+    if raw[25] >= 4 and header_size >= RAW_HEADER and len(raw) >= RAW_HEADER:
+        evlr_start, n_evlr = struct.unpack_from("<QI", raw, 235)
+        if n_evlr and (evlr_start < offset or evlr_start + n_evlr * EVLR_HEADER > size):
+            raise SourceError(
+                f"{relpath}: the header declares {n_evlr} extended VLRs from byte {evlr_start}, which do not fit "
+                f"in the {size}-byte file after the point data; the header is damaged"
             )
     problems = []
     pos = header_size
