@@ -197,7 +197,8 @@ def shelf_state(root: Path) -> dict[str, object]:
     """Everything a shelf holds, with the one run-dependent value removed.
 
     Timestamps, found by diffing two clean runs of the same source: the Items' ``published``
-    (and its copy in the items index), the ledger's ``updated``/``replaced`` columns, and the
+    (and its copy in the items index, hence the index's checksum on the scans Collection's link to
+    it), the ledger's ``updated``/``replaced`` columns, and the
     "made <time>" line of the health page ``index.html`` (which also names the shelf's folder).
     Everything else is byte-identical between clean runs.
     """
@@ -214,6 +215,12 @@ def shelf_state(root: Path) -> dict[str, object]:
             state[rel] = _index_rows(p)
         elif rel.startswith("scans/items/"):
             state[rel] = _strip_published(json.loads(p.read_text()))
+        elif rel == "scans/collection.json":  # its link to the index carries the index's checksum
+            doc = json.loads(p.read_text())
+            for link in doc["links"]:
+                link.pop("file:checksum", None)
+                link.pop("file:size", None)
+            state[rel] = doc
         elif rel == "index.html":  # the health page names the shelf's folder and the time it was made
             page = p.read_bytes().replace(str(root).encode(), b"<shelf>")
             state[rel] = hashlib.sha256(re.sub(rb"made \d{4}-\d\d-\d\d \d\d:\d\d UTC", b"made <time>", page)).hexdigest()

@@ -207,8 +207,6 @@ def test_verify_finds_a_flipped_byte_and_names_the_file(shelf, tmp_path, asset, 
     assert any(named in p for p in report.problems), report.problems
 
 
-@pytest.mark.xfail(strict=True, reason="the catalog records no checksum of scans/items.parquet, so a flip in "
-                   "its footer (key-value metadata, statistics) reads back as valid; see the reliability note")
 def test_verify_finds_a_flipped_byte_in_the_index_footer(shelf, tmp_path) -> None:
     from archive.catalog import verify_shelf
 

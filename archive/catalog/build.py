@@ -26,6 +26,7 @@ from archive.catalog.index import index_items, write_index
 from archive.catalog.items import scan_item
 from archive.catalog.store import Shelf
 from archive.layout import (
+    SCANS_INDEX,
     CATALOG,
     GRIDS_COLLECTION,
     LEDGER,
@@ -122,18 +123,32 @@ def _write(
     scans = scans_collection(all_items, settings)
     cubes = [GridInfo.coerce(g) for g in grids] if grids is not None else discover_grids(shelf)
     cubes = [_fingerprinted(shelf, g) for g in cubes]
+    write_index(shelf, all_items, collection={k: v for k, v in scans.items() if k != "links"})
+    result.written.append("scans/items.parquet")
+    _fingerprint_index_link(shelf, scans)
     for path, doc in (
         (SCANS_COLLECTION, scans),
         (GRIDS_COLLECTION, grids_collection(cubes, settings, scans["extent"])),
     ):
         shelf.write_json(path, doc, pretty=True)
         result.written.append(path)
-    write_index(shelf, all_items, collection={k: v for k, v in scans.items() if k != "links"})
-    result.written.append("scans/items.parquet")
     shelf.write_json(CATALOG, root_catalog(settings), pretty=True)
     result.written.append(CATALOG)
     result.item_count, result.grid_count = len(all_items), len(cubes)
     return result
+
+
+def _fingerprint_index_link(shelf: Shelf, scans: dict[str, Any]) -> None:
+    """Put the index's size and checksum on the Collection's link to it, so verify finds bit rot there too."""
+    import hashlib
+
+    from archive.catalog.store import multihash_sha256
+
+    data = shelf.read_bytes(SCANS_INDEX)
+    for link in scans["links"]:
+        if link["rel"] == "alternate" and link["href"].endswith("items.parquet"):
+            link["file:size"] = len(data)
+            link["file:checksum"] = multihash_sha256(hashlib.sha256(data).hexdigest())
 
 
 def _parse(text: str) -> datetime:

@@ -80,11 +80,26 @@ def verify_shelf(
                 todo.append(target)
             elif not shelf.exists(target):
                 report.problems.append(f"{path}: link rel={link.get('rel')} -> {target} does not exist")
+            elif "file:checksum" in link and not quick:
+                _check_link_file(shelf, target, link, report)
         for key, asset in doc.get("assets", {}).items():
             _check_asset(shelf, path, key, asset, doc, quick, report)
     _check_index(shelf, items, report)
     _check_orphans(shelf, items, report)
     return report
+
+
+def _check_link_file(shelf: Shelf, target: str, link: dict[str, Any], report: VerifyReport) -> None:
+    """Linked files that carry file:size/file:checksum (the search index) are checked like assets."""
+    import hashlib
+
+    from archive.catalog.store import multihash_sha256
+
+    data = shelf.read_bytes(target)
+    if link.get("file:size") is not None and len(data) != link["file:size"]:
+        report.problems.append(f"{target}: size {len(data)} bytes, catalog says {link['file:size']}")
+    elif multihash_sha256(hashlib.sha256(data).hexdigest()) != link["file:checksum"]:
+        report.problems.append(f"{target}: checksum differs from the catalog's; the file is damaged or was changed")
 
 
 def _check_orphans(shelf: Shelf, items: dict[str, dict[str, Any]], report: VerifyReport) -> None:
