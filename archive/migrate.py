@@ -187,7 +187,7 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
         specs = _station_grids(ledger, usable, recipe)
         tasks, done_ids = [], set()
         for report in reports:
-            _classify_outcome(report, ledger, result, salvage, usable)
+            _classify_outcome(report, ledger, result, salvage)
         for report in usable:
             scan_id = str(ScanId(report.station, report.scan_time))
             entry = ledger.file(report.relpath)
@@ -319,7 +319,7 @@ def _station_grids(ledger: Ledger, usable: list[FileReport], recipe: Recipe) -> 
     return specs
 
 
-def _classify_outcome(report: FileReport, ledger: Ledger, result: MigrateResult, salvage: bool, usable) -> None:
+def _classify_outcome(report: FileReport, ledger: Ledger, result: MigrateResult, salvage: bool) -> None:
     """Record files that will not be converted (duplicates, failures, non-data) in the ledger."""
     if report.kind == "grid":
         return

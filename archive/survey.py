@@ -21,7 +21,7 @@ import pyarrow.parquet as pq
 from archive.layout import check_station
 from archive.recipe import Recipe, load_recipe
 from archive.sources import SourceError, classify, open_points, scan_time_of
-from archive.storage import filesystem, join
+from archive.storage import filesystem
 from archive.timeutil import parse_stamp
 
 HASH_BLOCK = 8 << 20
@@ -380,4 +380,4 @@ def _bar(enabled: bool, **kwargs):
     return tqdm(disable=not enabled, unit_scale=True, leave=False, **kwargs)
 
 
-__all__ = ["FileReport", "SurveyResult", "survey", "inspect_file", "walk_source", "station_of", "join"]
+__all__ = ["FileReport", "SurveyResult", "survey", "inspect_file", "walk_source", "station_of"]
