@@ -30,8 +30,8 @@ from archive.points.write import write_scan
 from archive.recipe import Recipe, load_recipe
 from archive.records import ScanRecord
 from archive.sources import SourceError, open_points
-from archive.storage import filesystem
-from archive.survey import FileReport, inspect_file, mark_duplicates, walk_source
+from archive.storage import filesystem, join
+from archive.survey import FileReport, inspect_file, mark_duplicates, progress_bar, walk_source
 from archive.timeutil import adjusted_gps_to_utc
 
 CHUNK_POINTS = 2_000_000
@@ -197,14 +197,14 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
                 continue
             tasks.append(
                 ScanTask(
-                    source=str(source), storage_options=storage_options or {}, path=_path_of(root, report.relpath),
+                    source=str(source), storage_options=storage_options or {}, path=join(root, report.relpath),
                     report=report, scan_id=scan_id, shelf=str(shelf_path), site_grid=site_grid.to_dict(),
                     grid_spec=specs[report.station].to_dict(), recipe=recipe, salvage=salvage,
                     chunk_points=chunk_points, memory_budget=memory_budget, row_group_points=row_group_points,
                     previews=previews,
                 )
             )
-        bar = _bar(progress, total=sum(t.report.point_count or 0 for t in tasks), unit="pt", desc="migrate")
+        bar = progress_bar(progress, total=sum(t.report.point_count or 0 for t in tasks), unit="pt", desc="migrate")
         for task, outcome in executor.run(convert_scan, tasks):
             if isinstance(outcome, BaseException):
                 outcome = ScanOutcome(task.report.relpath, error=f"failed twice on the cluster: {outcome!r}")
@@ -238,7 +238,7 @@ def _survey(fs, root: str, recipe: Recipe, ledger: Ledger, executor, progress: b
             reports[relpath] = _report_from_json(cached)
         else:
             todo.append((path, relpath, size, mtime))
-    bar = _bar(progress, total=sum(e[2] for e in todo), unit="B", desc="survey")
+    bar = progress_bar(progress, total=sum(e[2] for e in todo), unit="B", desc="survey")
     for (fs_, path, relpath, size, recipe_, mtime), report in executor.run(
         _inspect_task, [(fs, p, r, s, recipe, m) for p, r, s, m in todo]
     ):
@@ -336,10 +336,6 @@ def _classify_outcome(report: FileReport, ledger: Ledger, result: MigrateResult,
             why += "; use --salvage to convert the readable points"
         result.failed.append((report.relpath, why))
         ledger.record_file(report.relpath, status="failed", error=why, **common)
-
-
-def _path_of(root: str, relpath: str) -> str:
-    return f"{root.rstrip('/')}/{relpath}"
 
 
 # --- one scan ---------------------------------------------------------------------------------
@@ -614,7 +610,7 @@ def _ingest_grids(fs, root, reports, recipe, shelf: Path, ledger: Ledger, result
         rule = recipe.grid_rule(report.relpath)
         try:
             ingested = ingest_grid(
-                _path_of(root, report.relpath), str(shelf), report.station,
+                join(root, report.relpath), str(shelf), report.station,
                 product=(rule.product if rule else None) or report.product,
                 crs=(rule.crs if rule else None) or recipe.crs, time=report.scan_time,
                 storage_options=storage_options,
@@ -642,9 +638,3 @@ def _remove_leftovers(shelf: Path) -> None:
                 shutil.rmtree(p, ignore_errors=True)
             else:
                 p.unlink(missing_ok=True)
-
-
-def _bar(enabled: bool, **kwargs):
-    from tqdm.auto import tqdm
-
-    return tqdm(disable=not enabled, unit_scale=True, leave=False, **kwargs)

@@ -365,7 +365,7 @@ def survey(
         raise FileNotFoundError(f"source {source} does not exist")
     entries = walk_source(fs, root, recipe)
     files = []
-    bar = _bar(progress, total=sum(e[2] for e in entries), unit="B", desc="survey")
+    bar = progress_bar(progress, total=sum(e[2] for e in entries), unit="B", desc="survey")
     for path, relpath, size, mtime in entries:
         files.append(inspect_file(fs, path, relpath, size, recipe, deep=deep, mtime=mtime))
         bar.update(size)
@@ -374,7 +374,8 @@ def survey(
     return SurveyResult(source=str(source), files=files)
 
 
-def _bar(enabled: bool, **kwargs):
+def progress_bar(enabled: bool, **kwargs):
+    """One look for every long-running step's progress (tqdm, off when ``enabled`` is false)."""
     from tqdm.auto import tqdm
 
     return tqdm(disable=not enabled, unit_scale=True, leave=False, **kwargs)
