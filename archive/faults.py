@@ -20,6 +20,7 @@ import signal
 
 CRASH_AT = "SCANSHELF_CRASH_AT"
 CRASH_LOG = "SCANSHELF_CRASH_LOG"
+KILLED_MARK = "scanshelf: killed itself at crash point"
 
 
 def _plan(text: str | None) -> tuple[str, int] | None:
@@ -55,4 +56,7 @@ def crash_point(name: str) -> None:
     if _PLAN is not None and _PLAN[0] == name:
         _seen[name] = _seen.get(name, 0) + 1
         if _seen[name] == _PLAN[1]:
+            # Last words on the raw descriptor (no buffer to lose), so a harness can tell this
+            # kill from a crash even when its process-status channel fails under load.
+            os.write(2, f"{KILLED_MARK} {name}:{_PLAN[1]}\n".encode())
             os.kill(os.getpid(), signal.SIGKILL)

@@ -26,6 +26,7 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from archive import faults
 from tests import factory
 
 PRELOAD = [
@@ -33,6 +34,7 @@ PRELOAD = [
     "archive.report.previews", "archive.faults", "tests.killing", "laspy", "zarr", "xarray",
     "matplotlib.pyplot",
 ]
+EXIT_MARK = "EXIT_CODE"
 TEMP_MARKS = (".part-", ".part", ".partial", ".tmp-", ".scanshelf-spill-", ".publishing")
 _ctx = None
 
@@ -73,6 +75,7 @@ def _child(argv: list[str], crash_at: str | None, crash_log: str | None, out: st
     import sys
 
     print(f"MAXRSS_KB {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}")
+    print(f"{EXIT_MARK} {code}")
     sys.stdout.flush()
     sys.stderr.flush()
     os._exit(code)
@@ -125,11 +128,28 @@ def run(argv: list[str], *, crash_at: str | None = None, crash_log: str | None =
     p = context().Process(target=_child, args=(argv, crash_at, crash_log, str(out), env or {}))
     p.start()
     p.join(kill_after)
-    if p.is_alive():
+    we_killed = p.is_alive()
+    if we_killed:
         p.kill()
         p.join()
     text = out.read_text(errors="replace") if out.exists() else ""
-    return Run(p.exitcode, p.exitcode == -9, text, time.perf_counter() - start)
+    code = _exit_code(p.exitcode, we_killed, text)
+    return Run(code, code == -9, text, time.perf_counter() - start)
+
+
+def _exit_code(reported: int, we_killed: bool, text: str) -> int:
+    """The child's real exit status.
+
+    Under load the forkserver can lose a child's status and report 255 instead (CPython
+    issue gh-140867); the child's own last line (its exit code, or the crash point's mark)
+    then says what happened.
+    """
+    if reported != 255:
+        return reported
+    if we_killed or faults.KILLED_MARK in text:
+        return -9
+    codes = re.findall(rf"^{EXIT_MARK} (-?\d+)$", text, flags=re.M)
+    return int(codes[-1]) if codes else reported
 
 
 def crash_counts(log: Path) -> Counter:
