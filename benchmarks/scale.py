@@ -125,21 +125,25 @@ def main() -> None:
 
     t0 = time.perf_counter()
     make_source(work / "source", args.points, args.scans)
-    print(f"generated {args.points:,} points in {args.scans} LAS scans in {time.perf_counter() - t0:.0f} s")
+    print(f"generated {args.points:,} points in {args.scans} LAS scans in {time.perf_counter() - t0:.0f} s", flush=True)
+    header = (f"{'run':28s} {'points':>13s} {'wall s':>8s} {'Mpts/s':>8s} {'s per 1e9':>10s} "
+              f"{'peak RSS/worker MiB':>20s}")
+    print(header, flush=True)
     rows = []
+
+    def record(name: str, workers: int, wall: float, n: int, peak: int) -> None:
+        # one line as soon as a run ends: a long benchmark cut short still leaves its figures
+        rows.append((name, workers, wall, n, peak))
+        print(f"{name:28s} {n:>13,} {wall:>8.1f} {n / wall / 1e6:>8.2f} {wall * 1e9 / n:>10.0f} "
+              f"{peak / 2**20:>20.0f}", flush=True)
+
     for workers in (1, 2):
-        wall, n, peak = run(work / "source", work / "shelf", workers)
-        rows.append((f"{args.scans} scans, {workers} worker(s)", workers, wall, n, peak))
+        record(f"{args.scans} scans, {workers} worker(s)", workers, *run(work / "source", work / "shelf", workers))
     if args.single:
         shutil.rmtree(work / "source", ignore_errors=True)
         write_scan(work / "single" / "north" / "scan_20260901_060000.las", args.single,
                    datetime(2026, 9, 1, 6, tzinfo=timezone.utc), 99)
-        wall, n, peak = run(work / "single", work / "shelf", 1)
-        rows.append(("one scan, 1 worker", 1, wall, n, peak))
-    print()
-    print(f"{'run':28s} {'points':>13s} {'wall s':>8s} {'Mpts/s':>8s} {'s per 1e9':>10s} {'peak RSS/worker MiB':>20s}")
-    for name, workers, wall, n, peak in rows:
-        print(f"{name:28s} {n:>13,} {wall:>8.1f} {n / wall / 1e6:>8.2f} {wall * 1e9 / n:>10.0f} {peak / 2**20:>20.0f}")
+        record("one scan, 1 worker", 1, *run(work / "single", work / "shelf", 1))
     print(f"\nscaling 2 workers / 1 worker: {rows[0][2] / rows[1][2]:.2f}x   (target ≥ 1.7x)")
     print(f"total throughput with 2 workers: {rows[1][3] / rows[1][2] / 1e6:.2f}M points/s   (target ≥ 6M/s)")
     print("peak RSS per worker target: ≤ 1536 MiB")
