@@ -530,12 +530,10 @@ def _report_stale(shelf: Path) -> bool:
 def _catalog_lag(shelf: Path, records: list[ScanRecord]) -> tuple[set[str], set[str]]:
     """Scans the ledger holds but the index lacks (or holds with other points), and index rows the
     ledger no longer has: what a run killed after its ledger commits left uncatalogued."""
-    from archive.catalog.index import index_items
+    from archive.catalog.index import points_checksums
     from archive.catalog.store import Shelf, multihash_sha256
 
-    listed = {}
-    for item in index_items(Shelf(str(shelf))):
-        listed[item["id"]] = item.get("assets", {}).get("points", {}).get("file:checksum")
+    listed = points_checksums(Shelf(str(shelf)))
     behind = {r.scan_id for r in records if listed.get(r.scan_id) != multihash_sha256(r.points_sha256)}
     return behind, set(listed) - {r.scan_id for r in records}
 

@@ -89,8 +89,6 @@ def test_a_huge_catalog_is_refused_without_reading_it_all(shelf, tmp_path) -> No
 @pytest.mark.parametrize("where", ["catalog", "item"])
 def test_deeply_nested_json_is_refused_clearly(shelf, tmp_path, where) -> None:
     from archive import open_shelf
-    from archive.catalog.index import index_items, write_index
-    from archive.catalog.store import Shelf
 
     root = _copy(shelf, tmp_path)
     deep = "[" * 200_000 + "]" * 200_000
@@ -99,9 +97,6 @@ def test_deeply_nested_json_is_refused_clearly(shelf, tmp_path, where) -> None:
         with pytest.raises(ValueError, match="catalog.json"):
             open_shelf(str(root))
         return
-    store = Shelf(str(root))
-    items = index_items(store)
-    write_index(store, items)
     import pyarrow as pa
     import pyarrow.parquet as pq
 

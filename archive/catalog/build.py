@@ -13,6 +13,8 @@ from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
 from typing import Any
 
+import pyarrow as pa
+
 from archive.catalog.collections import (
     PROVIDER_PLACEHOLDER,
     TITLE_PLACEHOLDER,
@@ -22,7 +24,7 @@ from archive.catalog.collections import (
     scans_collection,
 )
 from archive.catalog.grids import discover_grids, store_fingerprint
-from archive.catalog.index import index_items, write_index
+from archive.catalog.index import index_table, items_of, merge_index, read_index, write_index
 from archive.catalog.items import scan_item
 from archive.catalog.store import Shelf
 from archive.layout import (
@@ -61,9 +63,10 @@ def build_catalog(
     recipe's [catalog] table (license, title, providers).
     """
     shelf = Shelf(shelf_url, storage_options)
-    old = {i["id"]: i for i in index_items(shelf)}
+    old = _old_index(shelf)
     keep = {r.scan_id for r in records}
-    return _write(shelf, records, old, [i for i in old if i not in keep], grids, settings or {})
+    stale = [] if old is None else [i for i in old.column("id").to_pylist() if i not in keep]
+    return _write(shelf, records, old, stale, grids, settings or {}, keep_old=False)
 
 
 def update_catalog(
@@ -79,28 +82,36 @@ def update_catalog(
     ``settings`` None keeps the license, title and providers already in the catalog.
     """
     shelf = Shelf(shelf_url, storage_options)
-    old = {i["id"]: i for i in index_items(shelf)}
-    if not old and shelf.exists(SCANS_COLLECTION):
-        old = {i["id"]: i for i in _walk_items(shelf)}
+    old = _old_index(shelf)
     if settings is None:
         settings = settings_from_catalog(shelf)
     return _write(shelf, new_records, old, list(removed_ids), grids, settings, keep_old=True)
 
 
+def _old_index(shelf: Shelf) -> pa.Table | None:
+    """The index as it stands; rebuilt from the Item files when only they survive."""
+    if shelf.exists(SCANS_INDEX):
+        return read_index(shelf)
+    if shelf.exists(SCANS_COLLECTION):
+        return index_table(_walk_items(shelf))
+    return None
+
+
 def _write(
     shelf: Shelf,
     records: Sequence[ScanRecord],
-    old: dict[str, dict[str, Any]],
+    old: pa.Table | None,
     removed_ids: list[str],
     grids: Sequence[GridInfo | Mapping[str, Any]] | None,
     settings: Mapping[str, Any],
-    keep_old: bool = False,
+    keep_old: bool,
 ) -> CatalogResult:
     result = CatalogResult()
     now = datetime.now(timezone.utc).replace(microsecond=0)
-    items = {k: v for k, v in old.items() if keep_old and k not in removed_ids}
+    before = items_of(old, (r.scan_id for r in records)) if old is not None else {}
+    items = []
     for record in records:
-        published = old.get(record.scan_id, {}).get("properties", {}).get("published")
+        published = before.get(record.scan_id, {}).get("properties", {}).get("published")
         item = scan_item(
             record,
             published=_parse(published) if published else now,
@@ -109,23 +120,22 @@ def _write(
         path = item_path(ScanId.parse(record.scan_id))
         shelf.write_json(path, item)
         result.written.append(path)
-        items[record.scan_id] = item
+        items.append(item)
     rewritten = {r.scan_id for r in records}
     for scan_id in (s for s in removed_ids if s not in rewritten):
-        items.pop(scan_id, None)
         path = item_path(ScanId.parse(scan_id))
         if shelf.exists(path):
             shelf.remove(path)
             result.removed.append(path)
-    if not items:
+    index = merge_index(old if keep_old else None, items, removed_ids)
+    if index.num_rows == 0:
         raise ValueError(f"no scans to catalog on {shelf.url}: migrate at least one scan first")
-    all_items = list(items.values())
-    scans = scans_collection(all_items, settings)
+    scans = scans_collection(index, settings)
     cubes = [GridInfo.coerce(g) for g in grids] if grids is not None else discover_grids(shelf)
     cubes = [_fingerprinted(shelf, g) for g in cubes]
-    write_index(shelf, all_items, collection={k: v for k, v in scans.items() if k != "links"})
-    result.written.append("scans/items.parquet")
-    _fingerprint_index_link(shelf, scans)
+    size, checksum = write_index(shelf, index, collection={k: v for k, v in scans.items() if k != "links"})
+    result.written.append(SCANS_INDEX)
+    _fingerprint_index_link(scans, size, checksum)
     for path, doc in (
         (SCANS_COLLECTION, scans),
         (GRIDS_COLLECTION, grids_collection(cubes, settings, scans["extent"])),
@@ -134,21 +144,16 @@ def _write(
         result.written.append(path)
     shelf.write_json(CATALOG, root_catalog(settings), pretty=True)
     result.written.append(CATALOG)
-    result.item_count, result.grid_count = len(all_items), len(cubes)
+    result.item_count, result.grid_count = index.num_rows, len(cubes)
     return result
 
 
-def _fingerprint_index_link(shelf: Shelf, scans: dict[str, Any]) -> None:
+def _fingerprint_index_link(scans: dict[str, Any], size: int, checksum: str) -> None:
     """Put the index's size and checksum on the Collection's link to it, so verify finds bit rot there too."""
-    import hashlib
-
-    from archive.catalog.store import multihash_sha256
-
-    data = shelf.read_bytes(SCANS_INDEX)
     for link in scans["links"]:
         if link["rel"] == "alternate" and link["href"].endswith("items.parquet"):
-            link["file:size"] = len(data)
-            link["file:checksum"] = multihash_sha256(hashlib.sha256(data).hexdigest())
+            link["file:size"] = size
+            link["file:checksum"] = checksum
 
 
 def _parse(text: str) -> datetime:

@@ -12,6 +12,8 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Any
 
+import pyarrow as pa
+import pyarrow.compute as pc
 import pystac
 from pyproj import CRS, Transformer
 
@@ -76,10 +78,6 @@ def _iso(t: datetime) -> str:
     return t.astimezone(timezone.utc).isoformat().replace("+00:00", "Z")
 
 
-def _parse_time(text: str) -> datetime:
-    return datetime.fromisoformat(text.replace("Z", "+00:00"))
-
-
 def _license(settings: Mapping[str, Any]) -> tuple[str, str]:
     lic = settings.get("license")
     return (lic, "") if lic else ("other", " " + LICENSE_PLACEHOLDER)
@@ -104,16 +102,18 @@ def _links(here: str, targets: Iterable[tuple[str, str, str | None]]) -> list[py
     ]
 
 
-def scans_collection(items: list[dict[str, Any]], settings: Mapping[str, Any]) -> dict[str, Any]:
-    """Collection of all scan Items; ``items`` are Item dicts written at ``scans/items/...``."""
-    if not items:
+def scans_collection(index: pa.Table, settings: Mapping[str, Any]) -> dict[str, Any]:
+    """Collection of all scan Items, computed from the search index's columns (no Item JSON parsed)."""
+    if index.num_rows == 0:
         raise ValueError("a scans collection needs at least one Item")
-    bboxes = [i["bbox"] for i in items]
-    starts = [_parse_time(i["properties"].get("start_datetime") or i["properties"]["datetime"]) for i in items]
-    ends = [_parse_time(i["properties"].get("end_datetime") or i["properties"]["datetime"]) for i in items]
+    bbox = index.column("bbox")
+    corner = {k: pc.struct_field(bbox, k) for k in ("xmin", "ymin", "xmax", "ymax")}
+    starts = pc.coalesce(index.column("start_datetime"), index.column("datetime"))
+    ends = pc.coalesce(index.column("end_datetime"), index.column("datetime"))
+    stations = index.column("scanshelf:station").to_pylist()
+    counts = pc.min_max(index.column("pc:count"))
+    codes = sorted(c for c in pc.unique(index.column("proj:code")).to_pylist() if c)
     license_id, license_note = _license(settings)
-    counts = [i["properties"]["pc:count"] for i in items]
-    codes = sorted({i["properties"].get("proj:code") for i in items if i["properties"].get("proj:code")})
     coll = pystac.Collection(
         id=SCANS_ID,
         title=f"{settings.get('title') or TITLE_PLACEHOLDER}: scans",
@@ -122,16 +122,16 @@ def scans_collection(items: list[dict[str, Any]], settings: Mapping[str, Any]) -
             + license_note
         ),
         extent=pystac.Extent(
-            pystac.SpatialExtent([[min(b[0] for b in bboxes), min(b[1] for b in bboxes),
-                                   max(b[2] for b in bboxes), max(b[3] for b in bboxes)]]),
-            pystac.TemporalExtent([[min(starts), max(ends)]]),
+            pystac.SpatialExtent([[pc.min(corner["xmin"]).as_py(), pc.min(corner["ymin"]).as_py(),
+                                   pc.max(corner["xmax"]).as_py(), pc.max(corner["ymax"]).as_py()]]),
+            pystac.TemporalExtent([[pc.min(starts).as_py(), pc.max(ends).as_py()]]),
         ),
         license=license_id,
         providers=_providers(settings),
         summaries=pystac.Summaries(
             {
-                f"{ext.PREFIX}station": sorted({i["properties"][f"{ext.PREFIX}station"] for i in items}),
-                "pc:count": {"minimum": min(counts), "maximum": max(counts)},
+                f"{ext.PREFIX}station": sorted(set(stations)),
+                "pc:count": {"minimum": counts["min"].as_py(), "maximum": counts["max"].as_py()},
                 "pc:type": ["lidar"],
                 **({"proj:code": codes} if codes else {}),
             }
@@ -147,9 +147,8 @@ def scans_collection(items: list[dict[str, Any]], settings: Mapping[str, Any]) -
             title="All Items as STAC-GeoParquet (search index)",
         )
     )
-    for i in sorted(items, key=lambda i: (i["properties"][f"{ext.PREFIX}station"], i["properties"]["datetime"])):
-        station = i["properties"][f"{ext.PREFIX}station"]
-        coll.add_link(pystac.Link("item", f"./items/{station}/{i['id']}.json", media_type="application/geo+json"))
+    for station, scan_id in zip(stations, index.column("id").to_pylist()):  # index order: station, time
+        coll.add_link(pystac.Link("item", f"./items/{station}/{scan_id}.json", media_type="application/geo+json"))
     return coll.to_dict(include_self_link=False, transform_hrefs=False)
 
 

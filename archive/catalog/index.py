@@ -9,8 +9,10 @@ metadata says so under ``scanshelf``.
 
 from __future__ import annotations
 
+import hashlib
 import io
 import json
+from collections.abc import Iterable
 from datetime import datetime
 from typing import Any
 
@@ -22,7 +24,7 @@ import shapely
 from shapely.geometry import shape
 
 from archive.catalog import extensions as ext
-from archive.catalog.store import Shelf, resolve_href
+from archive.catalog.store import Shelf, multihash_sha256, resolve_href
 from archive.layout import SCANS_INDEX, ScanId, item_path
 
 ROW_GROUP_ROWS = 256  # a few hundred Items: a `find` by station and time reads one or two groups
@@ -77,14 +79,16 @@ def _asset_row(item_file: str, asset: dict[str, Any] | None) -> dict[str, Any] |
     }
 
 
-def _sort_key(item: dict[str, Any]) -> tuple[str, str]:
-    return item["properties"][f"{ext.PREFIX}station"], item["properties"]["datetime"]
+def sort_index(table: pa.Table) -> pa.Table:
+    """Station, then time, then id: the order the index promises and its row-group pruning needs."""
+    keys = [("scanshelf:station", "ascending"), ("datetime", "ascending"), ("id", "ascending")]
+    return table.take(pc.sort_indices(table, sort_keys=keys))
 
 
 def index_table(items: list[dict[str, Any]]) -> pa.Table:
-    """Rows in station-then-time order, built from exactly the Item dicts written as JSON."""
+    """Rows in index order, built from exactly the Item dicts written as JSON."""
     rows = []
-    for item in sorted(items, key=_sort_key):
+    for item in items:
         p = item["properties"]
         here = item_path(ScanId.parse(item["id"]))
         b = item["bbox"]
@@ -113,7 +117,41 @@ def index_table(items: list[dict[str, Any]]) -> pa.Table:
                 "item_json": json.dumps(item, separators=(",", ":"), ensure_ascii=False),
             }
         )
-    return pa.Table.from_pylist(rows, schema=SCHEMA)
+    return sort_index(pa.Table.from_pylist(rows, schema=SCHEMA))
+
+
+def merge_index(old: pa.Table | None, items: list[dict[str, Any]], drop: Iterable[str] = ()) -> pa.Table:
+    """``old`` less the rows of ``drop`` and of ``items``, plus ``items``.
+
+    Only the new Items are turned into rows, so an update of a big shelf costs the new Items,
+    not a parse of every Item JSON. An index of another layout is rebuilt from its ``item_json``.
+    """
+    new = index_table(items)
+    if old is None or old.num_rows == 0:
+        return new
+    try:
+        old = old.select(SCHEMA.names).cast(SCHEMA)
+    except (KeyError, pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        old = index_table([json.loads(t) for t in old.column("item_json").to_pylist()])
+    gone = pa.array(sorted(set(drop) | set(new.column("id").to_pylist())), pa.string())
+    kept = old.filter(pc.invert(pc.is_in(old.column("id"), value_set=gone)))
+    return sort_index(pa.concat_tables([kept, new]))
+
+
+def items_of(table: pa.Table, ids: Iterable[str]) -> dict[str, dict[str, Any]]:
+    """The Item dicts of ``ids`` (those the table holds), parsed from ``item_json``."""
+    rows = table.filter(pc.is_in(table.column("id"), value_set=pa.array(sorted(set(ids)), pa.string())))
+    return {i: json.loads(t) for i, t in zip(rows.column("id").to_pylist(), rows.column("item_json").to_pylist())}
+
+
+def points_checksums(shelf: Shelf) -> dict[str, str | None]:
+    """Scan id → the points asset's ``file:checksum`` per the index, read from two columns only."""
+    if not shelf.exists(SCANS_INDEX):
+        return {}
+    table = read_index(shelf, ["id", "assets"])
+    points = pc.struct_field(table.column("assets"), "points")
+    sums = pc.struct_field(points, "file:checksum")
+    return dict(zip(table.column("id").to_pylist(), sums.to_pylist()))
 
 
 def _file_metadata(table: pa.Table, collection: dict[str, Any] | None) -> dict[bytes, bytes]:
@@ -151,11 +189,8 @@ def _file_metadata(table: pa.Table, collection: dict[str, Any] | None) -> dict[b
     }
 
 
-def write_index(
-    shelf: Shelf, items: list[dict[str, Any]], collection: dict[str, Any] | None = None
-) -> pa.Table:
-    """Write ``scans/items.parquet`` atomically; returns the table written."""
-    table = index_table(items)
+def write_index(shelf: Shelf, table: pa.Table, collection: dict[str, Any] | None = None) -> tuple[int, str]:
+    """Write ``scans/items.parquet`` (an :func:`index_table`) atomically; returns its size and multihash."""
     table = table.replace_schema_metadata(_file_metadata(table, collection))
     buf = io.BytesIO()
     pq.write_table(
@@ -166,21 +201,15 @@ def write_index(
         write_statistics=True,
         use_dictionary=["collection", "scanshelf:station", "proj:code", "type", "stac_version"],
     )
-    shelf.write_bytes(SCANS_INDEX, buf.getvalue())
-    return table
+    data = buf.getvalue()
+    shelf.write_bytes(SCANS_INDEX, data)
+    return len(data), multihash_sha256(hashlib.sha256(data).hexdigest())
 
 
 def read_index(shelf: Shelf, columns: list[str] | None = None) -> pa.Table:
     """The index as an Arrow table (all columns unless ``columns`` is given)."""
     with shelf.fs.open(shelf.path(SCANS_INDEX), "rb") as f:
         return pq.read_table(f, columns=columns)
-
-
-def index_items(shelf: Shelf) -> list[dict[str, Any]]:
-    """Every Item dict stored in the index, in index order."""
-    if not shelf.exists(SCANS_INDEX):
-        return []
-    return [json.loads(t) for t in read_index(shelf, ["item_json"]).column("item_json").to_pylist()]
 
 
 _PRUNE = ("bbox.xmin", "bbox.ymin", "bbox.xmax", "bbox.ymax", "start_datetime", "end_datetime", "scanshelf:station")

@@ -78,7 +78,7 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
     bars.yaxis.set_major_formatter(mticker.EngFormatter(sep=""))
     if t.size == 1:  # one scan: give the axis a day either side so the stem is not on an edge
         bars.set_xlim(t[0] - np.timedelta64(1, "D"), t[0] + np.timedelta64(1, "D"))
-    locator = mdates.AutoDateLocator(maxticks=8)
+    locator = mdates.AutoDateLocator(minticks=3, maxticks=8)  # default minticks=5 leaves 3.5–5 day spans untickable
     bars.xaxis.set_major_locator(locator)
     bars.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
     handles = [Patch(color=SCAN, label="scan"), Patch(color=GAP, alpha=0.5, label="gap")]
