@@ -55,6 +55,14 @@ CREATE TABLE IF NOT EXISTS settings (
     key TEXT PRIMARY KEY,
     value TEXT
 );
+CREATE TABLE IF NOT EXISTS object_hashes (
+    store TEXT,           -- shelf-relative path of a directory store (a Zarr cube)
+    path TEXT,            -- object path inside it
+    size INTEGER,
+    mtime REAL,
+    sha256 TEXT,          -- a cache only: the catalog's checksum of a store costs the new objects
+    PRIMARY KEY (store, path)
+);
 """
 
 
@@ -112,6 +120,18 @@ class Ledger:
 
     def save_inspection(self, relpath: str, size: int, mtime: float | None, report: str) -> None:
         self._db.execute("INSERT OR REPLACE INTO inspections VALUES (?, ?, ?, ?)", (relpath, size, mtime, report))
+
+    # object hashes (see archive.catalog.grids.store_fingerprint) ----------------------------
+    def object_hashes(self, store: str) -> dict[str, tuple[int, float, str]]:
+        rows = self._db.execute("SELECT path, size, mtime, sha256 FROM object_hashes WHERE store = ?", (store,))
+        return {path: (size, mtime, sha) for path, size, mtime, sha in rows}
+
+    def keep_object_hashes(self, store: str, hashes: dict[str, tuple[int, float, str]]) -> None:
+        """Replace the store's cached hashes with ``hashes`` (objects gone from the store drop out)."""
+        with self.transaction():
+            self._db.execute("DELETE FROM object_hashes WHERE store = ?", (store,))
+            self._db.executemany("INSERT INTO object_hashes VALUES (?, ?, ?, ?, ?)",
+                                 [(store, p, *v) for p, v in hashes.items()])
 
     # files and scans ------------------------------------------------------------------------
     def file(self, relpath: str) -> FileEntry | None:

@@ -216,7 +216,7 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
         records = ledger.scans()
         result.scans_total = len(records)
         if catalog:
-            _write_catalog(shelf_path, records, result, recipe)
+            _write_catalog(shelf_path, records, result, recipe, ledger)
             if records and _report_stale(shelf_path):
                 from archive.report import write_index_html
 
@@ -503,7 +503,8 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
         result.partial.append(record.scan_id)
 
 
-def _write_catalog(shelf: Path, records: list[ScanRecord], result: MigrateResult, recipe: Recipe) -> None:
+def _write_catalog(shelf: Path, records: list[ScanRecord], result: MigrateResult, recipe: Recipe,
+                   ledger: Ledger) -> None:
     """Whole catalog on the first run; afterwards only the new Items plus collections, index and root."""
     from archive.catalog import build_catalog, update_catalog
 
@@ -515,9 +516,9 @@ def _write_catalog(shelf: Path, records: list[ScanRecord], result: MigrateResult
         return
     if have_catalog:
         new = [r for r in records if r.scan_id in changed]
-        update_catalog(str(shelf), new, removed_ids=removed, settings=recipe.catalog or None)
+        update_catalog(str(shelf), new, removed_ids=removed, settings=recipe.catalog or None, memo=ledger)
     else:
-        build_catalog(str(shelf), records, settings=recipe.catalog)
+        build_catalog(str(shelf), records, settings=recipe.catalog, memo=ledger)
 
 
 def _report_stale(shelf: Path) -> bool:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import shutil
 import sqlite3
 from pathlib import Path
@@ -69,3 +70,42 @@ def test_changed_source_replaces_its_scan(small_source, tmp_path):
     cube = xr.open_zarr(shelf / "grids/north.zarr", zarr_format=3)
     live = [s for s in cube["scan_id"].values.tolist() if s]
     assert "north-20260901T060000Z" not in live and live.count("north-20260901T063000Z") == 1
+
+
+
+
+def test_cube_fingerprint_reads_only_new_or_changed_objects(tmp_path, monkeypatch):
+    from archive.catalog.grids import store_fingerprint
+    from archive.catalog.store import Shelf
+    from archive.ledger import Ledger
+
+    cube = tmp_path / "grids/north.zarr"
+    for i in range(5):
+        (cube / f"elevation/c/{i}/0/0").parent.mkdir(parents=True, exist_ok=True)
+        (cube / f"elevation/c/{i}/0/0").write_bytes(bytes([i]) * (100 + i))
+    shelf = Shelf(str(tmp_path))
+    plain = store_fingerprint(shelf, "grids/north.zarr")
+    read = []
+    real = Shelf.sha256
+    monkeypatch.setattr(Shelf, "sha256", lambda self, rel: read.append(rel) or real(self, rel))
+
+    with Ledger(tmp_path / "ledger.sqlite") as ledger:
+        assert store_fingerprint(shelf, "grids/north.zarr", ledger) == plain and len(read) == 5
+        read.clear()
+        (cube / "elevation/c/5/0/0").parent.mkdir(parents=True)
+        (cube / "elevation/c/5/0/0").write_bytes(b"new epoch")  # one epoch appended
+        grown = store_fingerprint(shelf, "grids/north.zarr", ledger)
+        assert read == ["grids/north.zarr/elevation/c/5/0/0"]
+        assert grown == store_fingerprint(Shelf(str(tmp_path)), "grids/north.zarr")  # same as reading all
+        assert grown != plain
+
+        read.clear()
+        changed = cube / "elevation/c/2/0/0"
+        changed.write_bytes(b"X" * 102)  # same size, new content...
+        stamp = changed.stat().st_mtime_ns + 10**9  # ...and a later mtime (file clocks tick in ms)
+        os.utime(changed, ns=(stamp, stamp))
+        (cube / "elevation/c/0/0/0").unlink()
+        after = store_fingerprint(shelf, "grids/north.zarr", ledger)
+        assert read == ["grids/north.zarr/elevation/c/2/0/0"]
+        assert after == store_fingerprint(Shelf(str(tmp_path)), "grids/north.zarr")
+        assert sorted(ledger.object_hashes("grids/north.zarr")) == [f"elevation/c/{i}/0/0" for i in (1, 2, 3, 4, 5)]

@@ -5,6 +5,7 @@ from __future__ import annotations
 import base64
 import io
 import json
+import os
 import re
 import shutil
 import subprocess
@@ -104,6 +105,32 @@ def test_self_contained_no_scripts_and_relative_links_resolve(report):
     # every scan of north is linked to its Item and its points file
     assert "scans/items/north/north-20260901T060000Z.json" in files
     assert "points/station=north/year=2026/north-20260901T060000Z.parquet" in files
+
+
+def test_unchanged_stations_keep_their_maps_and_changed_ones_are_redrawn(report, tmp_path, monkeypatch):
+    from archive.report import charts
+
+    shelf, _, _ = report
+    copy = tmp_path / "shelf"
+    shutil.copytree(shelf, copy)
+    first = (copy / layout.REPORT).read_text("utf-8")
+    drawn = []
+    real = charts.elevation_map
+    monkeypatch.setattr(charts, "elevation_map", lambda da, title: drawn.append(title) or real(da, title))
+    write_index_html(copy)
+    assert drawn == []  # no cube changed: every map block comes from the earlier page
+    assert _maps_blocks((copy / layout.REPORT).read_text("utf-8")) == _maps_blocks(first)
+
+    chunk = next(p for p in (copy / "grids/south.zarr").rglob("*") if p.is_file() and "elevation" in str(p))
+    os.utime(chunk, ns=(chunk.stat().st_atime_ns, chunk.stat().st_mtime_ns + 10**9))  # "rewritten"
+    write_index_html(copy)
+    assert len(drawn) == 1 and drawn[0].startswith("elevation, south"), drawn
+    again = _maps_blocks((copy / layout.REPORT).read_text("utf-8"))
+    assert len(again) == 2 and again[0] == _maps_blocks(first)[0] and again[1] != _maps_blocks(first)[1]
+
+
+def _maps_blocks(page: str) -> list[str]:
+    return re.findall(r"<!-- scanshelf-maps [0-9a-f]{64} -->.*?<!-- /scanshelf-maps -->", page, flags=re.S)
 
 
 def test_caution_header_and_gap_rule_are_stated(report):

@@ -23,7 +23,7 @@ from archive.catalog.collections import (
     root_catalog,
     scans_collection,
 )
-from archive.catalog.grids import discover_grids, store_fingerprint
+from archive.catalog.grids import HashMemo, discover_grids, store_fingerprint
 from archive.catalog.index import index_table, items_of, merge_index, read_index, write_index
 from archive.catalog.items import scan_item
 from archive.catalog.store import Shelf
@@ -56,17 +56,19 @@ def build_catalog(
     grids: Sequence[GridInfo | Mapping[str, Any]] | None = None,
     settings: Mapping[str, Any] | None = None,
     storage_options: dict | None = None,
+    memo: HashMemo | None = None,
 ) -> CatalogResult:
     """Write the complete catalog for exactly ``records``; Items of other scans are removed.
 
     ``grids`` describes the Zarr cubes (None: read them from the shelf); ``settings`` is the
-    recipe's [catalog] table (license, title, providers).
+    recipe's [catalog] table (license, title, providers); ``memo`` keeps the cubes' object
+    hashes between runs (see :func:`store_fingerprint`).
     """
     shelf = Shelf(shelf_url, storage_options)
     old = _old_index(shelf)
     keep = {r.scan_id for r in records}
     stale = [] if old is None else [i for i in old.column("id").to_pylist() if i not in keep]
-    return _write(shelf, records, old, stale, grids, settings or {}, keep_old=False)
+    return _write(shelf, records, old, stale, grids, settings or {}, keep_old=False, memo=memo)
 
 
 def update_catalog(
@@ -76,6 +78,7 @@ def update_catalog(
     grids: Sequence[GridInfo | Mapping[str, Any]] | None = None,
     settings: Mapping[str, Any] | None = None,
     storage_options: dict | None = None,
+    memo: HashMemo | None = None,
 ) -> CatalogResult:
     """Add or replace the Items of ``new_records``, drop ``removed_ids``, refresh the rest.
 
@@ -85,7 +88,7 @@ def update_catalog(
     old = _old_index(shelf)
     if settings is None:
         settings = settings_from_catalog(shelf)
-    return _write(shelf, new_records, old, list(removed_ids), grids, settings, keep_old=True)
+    return _write(shelf, new_records, old, list(removed_ids), grids, settings, keep_old=True, memo=memo)
 
 
 def _old_index(shelf: Shelf) -> pa.Table | None:
@@ -105,6 +108,7 @@ def _write(
     grids: Sequence[GridInfo | Mapping[str, Any]] | None,
     settings: Mapping[str, Any],
     keep_old: bool,
+    memo: HashMemo | None,
 ) -> CatalogResult:
     result = CatalogResult()
     now = datetime.now(timezone.utc).replace(microsecond=0)
@@ -132,7 +136,7 @@ def _write(
         raise ValueError(f"no scans to catalog on {shelf.url}: migrate at least one scan first")
     scans = scans_collection(index, settings)
     cubes = [GridInfo.coerce(g) for g in grids] if grids is not None else discover_grids(shelf)
-    cubes = [_fingerprinted(shelf, g) for g in cubes]
+    cubes = [_fingerprinted(shelf, g, memo) for g in cubes]
     size, checksum = write_index(shelf, index, collection={k: v for k, v in scans.items() if k != "links"})
     result.written.append(SCANS_INDEX)
     _fingerprint_index_link(scans, size, checksum)
@@ -169,12 +173,12 @@ def _thumbnail(shelf: Shelf, record: ScanRecord, result: CatalogResult) -> tuple
     return shelf.size(record.preview_href), shelf.sha256(record.preview_href)
 
 
-def _fingerprinted(shelf: Shelf, g: GridInfo) -> GridInfo:
+def _fingerprinted(shelf: Shelf, g: GridInfo, memo: HashMemo | None) -> GridInfo:
     if g.size is not None and g.checksum is not None:
         return g
     if not shelf.exists(g.href):
         raise FileNotFoundError(f"grid cube {shelf.path(g.href)} does not exist; write it before the catalog")
-    size, checksum = store_fingerprint(shelf, g.href)
+    size, checksum = store_fingerprint(shelf, g.href, memo)
     return replace(g, size=size, checksum=checksum)
 
 

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import hashlib
 from datetime import datetime, timezone
+from typing import Protocol
 
 import numpy as np
 
@@ -15,21 +16,43 @@ from archive.catalog.collections import GridInfo
 from archive.catalog.store import Shelf, multihash_sha256
 
 
-def store_fingerprint(shelf: Shelf, href: str) -> tuple[int, str]:
+class HashMemo(Protocol):
+    """Where object hashes of a store are kept between runs (the migration ledger is one)."""
+
+    def object_hashes(self, store: str) -> dict[str, tuple[int, float, str]]: ...
+
+    def keep_object_hashes(self, store: str, hashes: dict[str, tuple[int, float, str]]) -> None: ...
+
+
+def store_fingerprint(shelf: Shelf, href: str, memo: HashMemo | None = None) -> tuple[int, str]:
     """(total bytes, multihash) of a directory store.
 
     The digest is SHA-256 over the sorted lines ``<path inside store>\\t<size>\\t<sha256>\\n``,
-    so it changes when any object in the store changes, is added or is removed.
+    so it changes when any object in the store changes, is added or is removed. With a ``memo``,
+    an object whose size and modification time are those of its memo entry is not read again:
+    a cube that grew by one epoch costs that epoch's objects, not the whole cube. (Bit rot in an
+    unread object is still found by ``verify``, which reads everything.)
     """
     base = shelf.path(href).rstrip("/")
-    files = sorted(p for p, info in shelf.fs.find(base, detail=True).items() if info["type"] == "file")
+    known = memo.object_hashes(href) if memo is not None else {}
+    seen: dict[str, tuple[int, float, str]] = {}
     digest, total = hashlib.sha256(), 0
-    for path in files:
+    for path, info in sorted(shelf.fs.find(base, detail=True).items()):
+        if info["type"] != "file":
+            continue
         rel = path[len(base) + 1 :] if path.startswith(base + "/") else path
-        size = int(shelf.fs.size(path))
+        size, mtime = int(info["size"]), info.get("mtime")
+        hit = known.get(rel)
+        if hit is not None and mtime is not None and hit[0] == size and hit[1] == mtime:
+            inner = hit[2]
+        else:
+            inner = shelf.sha256(f"{href.rstrip('/')}/{rel}")
+        if mtime is not None:
+            seen[rel] = (size, mtime, inner)
         total += size
-        inner = shelf.sha256(f"{href.rstrip('/')}/{rel}")
         digest.update(f"{rel}\t{size}\t{inner}\n".encode())
+    if memo is not None:
+        memo.keep_object_hashes(href, seen)
     return total, multihash_sha256(digest.hexdigest())
 
 

@@ -131,7 +131,12 @@ def elevation_change(
     spec = read_spec(url, storage_options)
     if spec is None:
         raise FileNotFoundError(f"no elevation cube for station {station!r} at {url}; run `scanshelf grid {shelf}`")
-    ds = open_cube(url, storage_options)
+    return epoch_change(open_cube(url, storage_options), t0, t1, spec.crs_wkt, stable_area)
+
+
+def epoch_change(ds: xr.Dataset, t0: datetime | str, t1: datetime | str, crs_wkt: str,
+                 stable_area=None) -> ChangeResult:
+    """:func:`elevation_change` on a cube already open (from :func:`open_cube`), e.g. for several pairs."""
     a = ds.sel(time=_utc_naive(t0), method="nearest")
     b = ds.sel(time=_utc_naive(t1), method="nearest")
     if a["scan_id"].item() == b["scan_id"].item():
@@ -140,7 +145,7 @@ def elevation_change(
     diff = diff.drop_vars(["time", "scan_id"], errors="ignore").astype(np.float32)
     diff.name = "elevation_change"
     diff.attrs = {"units": "m", "long_name": f"elevation change {a['scan_id'].item()} to {b['scan_id'].item()}",
-                  "grid_mapping": "spatial_ref", "crs_wkt": spec.crs_wkt}
+                  "grid_mapping": "spatial_ref", "crs_wkt": crs_wkt}
     values = diff.values
     valid = np.isfinite(values)
     result = ChangeResult(

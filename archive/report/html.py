@@ -21,8 +21,10 @@ from urllib.parse import quote, urlsplit
 import numpy as np
 
 from archive import layout
-from archive.grids import elevation_change, open_cube, read_spec
+from archive.grids import open_cube, read_spec
+from archive.grids.change import epoch_change
 from archive.report import charts
+from archive.report.reuse import cube_key, earlier_blocks, wrap
 from archive.report.health import GAP_FACTOR, Problem, ShelfHealth, StationHealth, read_health
 from archive.storage import filesystem, is_local
 
@@ -68,7 +70,8 @@ def build_report(shelf_url: str, output: str, storage_options: dict | None = Non
     health = read_health(shelf_url, storage_options, gap_factor)
     base = _link_base(shelf_url, output)
     notes: list[str] = []
-    sections = [_station_section(shelf_url, storage_options, s, base, gap_factor, notes)
+    earlier = earlier_blocks(_local_text(output, output_options))
+    sections = [_station_section(shelf_url, storage_options, s, base, gap_factor, notes, earlier)
                 for s in health.stations.values()]
     page = _page(health, sections, base, gap_factor)
     data = page.encode("utf-8")
@@ -118,7 +121,7 @@ def _href(base: str, rel: str) -> str:
 
 
 def _station_section(shelf_url: str, storage_options: dict | None, st: StationHealth, base: str,
-                     gap_factor: float, notes: list[str]) -> str:
+                     gap_factor: float, notes: list[str], earlier: dict[str, str]) -> str:
     parts = [f'<section class="station" id="station-{html.escape(st.station)}">',
              f'<h2><span class="label">station</span> {html.escape(st.station)}</h2>', _station_facts(st, base)]
     if st.scans:
@@ -128,7 +131,7 @@ def _station_section(shelf_url: str, storage_options: dict | None, st: StationHe
         parts.append(_figure(png, f"Coverage of station {st.station}: one tick per scan, points per scan below",
                              _coverage_caption(st, gap_factor), wide=True))
         parts.append(_gap_list(st, gap_factor))
-    parts.append(_maps(shelf_url, storage_options, st, notes))
+    parts.append(_maps(shelf_url, storage_options, st, notes, earlier))
     parts.append(_problem_table(st.problems, f"Problems at {st.station}"))
     if st.scans:
         parts.append(_scan_table(st, base))
@@ -180,11 +183,23 @@ def _gap_list(st: StationHealth, gap_factor: float) -> str:
             f"<tbody>{rows}</tbody></table>")
 
 
-def _maps(shelf_url: str, storage_options: dict | None, st: StationHealth, notes: list[str]) -> str:
-    """Latest elevation, point density, change over the last interval and over the record."""
+def _maps(shelf_url: str, storage_options: dict | None, st: StationHealth, notes: list[str],
+          earlier: dict[str, str]) -> str:
+    """The station's maps: copied from the earlier page if its cube is unchanged, else drawn."""
     cube_url = f"{str(shelf_url).rstrip('/')}/{layout.grid_path(st.station)}"
+    key = cube_key(st.station, cube_url, storage_options)
+    if key is not None and key in earlier:
+        return wrap(key, earlier[key])
+    before = len(notes)
+    block = _draw_maps(cube_url, storage_options, st, notes)
+    return wrap(key if len(notes) == before else None, block)  # a block with a note is drawn again
+
+
+def _draw_maps(cube_url: str, storage_options: dict | None, st: StationHealth, notes: list[str]) -> str:
+    """Latest elevation, point density, change over the last interval and over the record."""
     try:
-        if read_spec(cube_url, storage_options) is None:
+        spec = read_spec(cube_url, storage_options)
+        if spec is None:
             notes.append(f"station {st.station}: no elevation cube ({layout.grid_path(st.station)})")
             return '<p class="quiet">No elevation cube for this station yet, so no maps.</p>'
         cube = open_cube(cube_url, storage_options)
@@ -211,8 +226,7 @@ def _maps(shelf_url: str, storage_options: dict | None, st: StationHealth, notes
         pairs.append(("whole record", 0, -1))
     for label, i, j in pairs:
         try:
-            change = elevation_change(str(shelf_url), st.station, _utc(times[i]), _utc(times[j]),
-                                      storage_options=storage_options)
+            change = epoch_change(cube, _utc(times[i]), _utc(times[j]), spec.crs_wkt)
         except (OSError, ValueError) as exc:
             notes.append(f"station {st.station}: change over the {label} not drawn: {exc}")
             continue
@@ -419,6 +433,17 @@ footer { padding:1rem 3rem 2rem; font-size:.82rem; color:var(--soft); border-top
 
 
 # --- helpers ---------------------------------------------------------------------------------
+
+
+def _local_text(output: str, options: dict | None) -> str:
+    """An earlier page at ``output``, if local and readable (its map blocks may be reused)."""
+    fs, path = filesystem(output, options)
+    if not is_local(fs):
+        return ""
+    try:
+        return fs.cat_file(path).decode("utf-8", errors="replace")
+    except OSError:
+        return ""
 
 
 def _write(output: str, data: bytes, options: dict | None) -> None:
