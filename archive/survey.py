@@ -7,6 +7,7 @@ migration will do with each file.
 from __future__ import annotations
 
 import fnmatch
+import functools
 import hashlib
 import re
 from collections import Counter
@@ -60,13 +61,17 @@ class FileReport:
 
     @property
     def crs_name(self) -> str | None:
-        if not self.crs_wkt:
-            return None
-        from pyproj import CRS
+        return _crs_name(self.crs_wkt) if self.crs_wkt else None
 
-        crs = CRS.from_wkt(self.crs_wkt)
-        auth = crs.to_authority()
-        return f"{auth[0]}:{auth[1]}" if auth else crs.name
+
+@functools.lru_cache(maxsize=64)
+def _crs_name(wkt: str) -> str:
+    """"EPSG:32633" or the CRS's own name; cached, as a source of thousands of files has a few CRSs."""
+    from pyproj import CRS
+
+    crs = CRS.from_wkt(wkt)
+    auth = crs.to_authority()
+    return f"{auth[0]}:{auth[1]}" if auth else crs.name
 
 
 @dataclass

@@ -135,8 +135,8 @@ def read_spec(cube_url: str, storage_options: dict | None = None) -> GridSpec | 
 
 
 def _scan_ids(cube_url: str, storage_options: dict | None) -> np.ndarray:
-    ds = xr.open_zarr(zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True)
-    return np.asarray(ds["scan_id"].values, dtype=object)
+    ds = xr.open_zarr(zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True, chunks=None)
+    return np.asarray(ds["scan_id"].values, dtype=object)  # chunks=None: numpy, no dask graph for one small array
 
 
 def _mark_series_stale(cube_url: str, storage_options: dict | None) -> None:
