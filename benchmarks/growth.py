@@ -1,9 +1,10 @@
 """Growth benchmark: what adding one scan to a shelf of N scans costs, against a one-scan shelf.
 
-Builds a source of N small scans (tests/factory-style LAS 1.4, one station), migrates it, then
-drops one more scan into the source and times the incremental re-run. The same new scan
-migrated into an empty shelf is the reference: the ratio says how much the size of the
-shelf adds to the cost of one scan. Also counts the files the incremental run rewrote.
+Builds a source of small scans (tests/factory-style LAS 1.4, one station) and migrates it at
+N/10 and at N scans; at each size it drops one more scan into the source and times the
+incremental re-run. The same new scan migrated into an empty shelf is the reference: the ratio
+says how much the size of the shelf adds to the cost of one scan, and the two sizes show
+whether that grows with the shelf. Also counts the files each addition rewrote.
 
     python benchmarks/growth.py [--scans 1000] [--points 20000]
 """
@@ -27,6 +28,19 @@ def _mtimes(shelf: Path) -> dict[Path, int]:
     return {p: p.stat().st_mtime_ns for p in shelf.rglob("*") if p.is_file()}
 
 
+def _add_one(work: Path, index: int, when, points: int) -> tuple[float, list[str], int]:
+    """Drop one more scan into the source and time the incremental migration."""
+    factory.write_las(work / f"source/north/scan_new_{index}.las", points, when, seed=10**6 + index, extra=False)
+    before = _mtimes(work / "shelf")
+    t0 = time.perf_counter()
+    result = migrate(str(work / "source"), str(work / "shelf"), previews=False)
+    seconds = time.perf_counter() - t0
+    assert len(result.converted) == 1, result.summary()
+    after = _mtimes(work / "shelf")
+    rewritten = sorted(str(p.relative_to(work / "shelf")) for p in after if before.get(p) != after[p])
+    return seconds, rewritten, len(after)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--scans", type=int, default=1000)
@@ -36,36 +50,32 @@ def main() -> None:
     work = Path(args.workdir)
     shutil.rmtree(work, ignore_errors=True)
     start = factory.utc(2026, 1, 1)
-    for i in range(args.scans):
-        factory.write_las(work / f"source/north/scan_{i:05d}.las", args.points, start + timedelta(hours=6 * i),
-                          seed=i, extra=False)
-    t0 = time.perf_counter()
-    migrate(str(work / "source"), str(work / "shelf"), previews=False)
-    build = time.perf_counter() - t0
-
-    new = start + timedelta(hours=6 * args.scans)
-    factory.write_las(work / "source/north/scan_new.las", args.points, new, seed=10**6, extra=False)
-    before = _mtimes(work / "shelf")
-    t0 = time.perf_counter()
-    result = migrate(str(work / "source"), str(work / "shelf"), previews=False)
-    add = time.perf_counter() - t0
-    after = _mtimes(work / "shelf")
-    assert len(result.converted) == 1, result.summary()
-    rewritten = sorted(str(p.relative_to(work / "shelf")) for p in after if before.get(p) != after[p])
-    unchanged = sum(1 for p in before if before[p] == after.get(p))
+    small = max(1, args.scans // 10)
+    adds = []
+    built = 0
+    for size in (small, args.scans):
+        for i in range(built, size):
+            factory.write_las(work / f"source/north/scan_{i:05d}.las", args.points, start + timedelta(hours=6 * i),
+                              seed=i, extra=False)
+        t0 = time.perf_counter()
+        migrate(str(work / "source"), str(work / "shelf"), previews=False)
+        print(f"shelf grown to {size} scans × {args.points:,} points in {time.perf_counter() - t0:.1f} s", flush=True)
+        built = size
+        # the added scan is newer than any in the source, as on a living shelf
+        adds.append((size, *_add_one(work, size, start + timedelta(hours=6 * (args.scans + len(adds))), args.points)))
 
     (work / "one/north").mkdir(parents=True)
-    shutil.copy(work / "source/north/scan_new.las", work / "one/north/scan_new.las")
+    shutil.copy(work / f"source/north/scan_new_{args.scans}.las", work / "one/north/scan_new.las")
     t0 = time.perf_counter()
     migrate(str(work / "one"), str(work / "one-shelf"), previews=False)
     one = time.perf_counter() - t0
 
-    print(f"shelf of {args.scans} scans × {args.points:,} points built in {build:.1f} s "
-          f"({build / args.scans:.2f} s per scan)")
-    print(f"adding one scan to it: {add:.2f} s; the same scan into an empty shelf: {one:.2f} s; "
-          f"ratio {add / one:.2f}")
-    print(f"files rewritten by the addition: {len(rewritten)} of {len(after)} ({unchanged} untouched)")
-    for p in rewritten:
+    print(f"the same scan into an empty shelf: {one:.2f} s")
+    for size, seconds, rewritten, files in adds:
+        print(f"adding one scan to a shelf of {size} scans: {seconds:.2f} s, ratio to the empty shelf "
+              f"{seconds / one:.2f}; files rewritten {len(rewritten)} of {files}")
+    print("files rewritten by the last addition:")
+    for p in adds[-1][2]:
         print("   ", p)
     shutil.rmtree(work, ignore_errors=True)
 
