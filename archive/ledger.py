@@ -12,7 +12,7 @@ import sqlite3
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any, Iterable, Iterator
 
 from archive.records import ScanRecord
 
@@ -182,9 +182,18 @@ class Ledger:
     def forget_scan(self, scan_id: str) -> None:
         self._db.execute("DELETE FROM scans WHERE scan_id = ?", (scan_id,))
 
-    def scans(self) -> list[ScanRecord]:
-        rows = self._db.execute("SELECT record FROM scans WHERE status = 'done' ORDER BY scan_id").fetchall()
-        return [ScanRecord.from_json(r[0]) for r in rows]
+    def scans(self, ids: Iterable[str] | None = None) -> list[ScanRecord]:
+        """Finished scans (those of ``ids`` only, if given), in scan id order."""
+        rows = self._db.execute("SELECT scan_id, record FROM scans WHERE status = 'done' ORDER BY scan_id").fetchall()
+        wanted = None if ids is None else set(ids)
+        return [ScanRecord.from_json(r) for i, r in rows if wanted is None or i in wanted]
+
+    def scan_checksums(self) -> dict[str, str]:
+        """Scan id → SHA-256 of its points file, for every finished scan, without parsing records."""
+        rows = self._db.execute(
+            "SELECT scan_id, json_extract(record, '$.points_sha256') FROM scans WHERE status = 'done' ORDER BY scan_id"
+        )
+        return dict(rows.fetchall())
 
     def history(self) -> list[tuple[str, str, str, str]]:
         return self._db.execute("SELECT relpath, sha256, scan_id, replaced FROM history ORDER BY replaced").fetchall()

@@ -9,6 +9,8 @@ dask workers — and a killed run re-run with the same arguments finishes the sa
 
 from __future__ import annotations
 
+import contextlib
+import fnmatch
 import json
 import os
 import uuid
@@ -37,6 +39,9 @@ from archive.timeutil import adjusted_gps_to_utc
 CHUNK_POINTS = 2_000_000
 MEMORY_BUDGET = 768 * 2**20
 ROW_GROUP_POINTS = 262_144
+# names of temporary files and folders (the write path's temporary names, spill folders, cube
+# copies being built): whatever of them a killed run left is removed at the start and end of a run
+LEFTOVERS = ("*.part-*", "*.part", ".scanshelf-spill-*", "*.tmp-*", "*.partial")
 WORKER_SORT_SHARE = 0.4  # of a dask worker's memory for the sort; the rest is Arrow buffers and Python
 FOOTPRINT_CELLS = 256  # the catalog outline is traced on at most this many cells a side
 
@@ -213,11 +218,11 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
             bar.set_postfix_str(f"{len(result.converted)}/{len(tasks)} scans", refresh=False)
         bar.close()
         _ingest_grids(fs, root, reports, recipe, shelf_path, ledger, result, storage_options)
-        records = ledger.scans()
-        result.scans_total = len(records)
+        checksums = ledger.scan_checksums()
+        result.scans_total = len(checksums)
         if catalog:
-            _write_catalog(shelf_path, records, result, recipe, ledger)
-            if records and _report_stale(shelf_path):
+            _write_catalog(shelf_path, checksums, result, recipe, ledger)
+            if checksums and _report_stale(shelf_path):
                 from archive.report import write_index_html
 
                 write_index_html(shelf_path)
@@ -503,22 +508,26 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
         result.partial.append(record.scan_id)
 
 
-def _write_catalog(shelf: Path, records: list[ScanRecord], result: MigrateResult, recipe: Recipe,
+def _write_catalog(shelf: Path, checksums: dict[str, str], result: MigrateResult, recipe: Recipe,
                    ledger: Ledger) -> None:
-    """Whole catalog on the first run; afterwards only the new Items plus collections, index and root."""
+    """Whole catalog on the first run; afterwards only the new Items plus collections, index and root.
+
+    ``checksums`` (scan id → points SHA-256 of every finished scan) finds what the catalog lacks
+    without parsing every scan's record: a big shelf's update costs its new scans.
+    """
     from archive.catalog import build_catalog, update_catalog
 
     have_catalog = (shelf / layout.CATALOG).exists() and (shelf / layout.SCANS_INDEX).exists()
-    behind, gone = _catalog_lag(shelf, records) if have_catalog else (set(), set())
+    behind, gone = _catalog_lag(shelf, checksums) if have_catalog else (set(), set())
     changed = set(result.converted) | set(result.retired) | behind
     removed = sorted(set(result.retired) | gone)
     if have_catalog and not changed and not removed and not result.grids:
         return
     if have_catalog:
-        new = [r for r in records if r.scan_id in changed]
-        update_catalog(str(shelf), new, removed_ids=removed, settings=recipe.catalog or None, memo=ledger)
+        update_catalog(str(shelf), ledger.scans(changed), removed_ids=removed, settings=recipe.catalog or None,
+                       memo=ledger)
     else:
-        build_catalog(str(shelf), records, settings=recipe.catalog, memo=ledger)
+        build_catalog(str(shelf), ledger.scans(), settings=recipe.catalog, memo=ledger)
 
 
 def _report_stale(shelf: Path) -> bool:
@@ -528,15 +537,15 @@ def _report_stale(shelf: Path) -> bool:
     return not report.exists() or (index.exists() and report.stat().st_mtime_ns < index.stat().st_mtime_ns)
 
 
-def _catalog_lag(shelf: Path, records: list[ScanRecord]) -> tuple[set[str], set[str]]:
+def _catalog_lag(shelf: Path, checksums: dict[str, str]) -> tuple[set[str], set[str]]:
     """Scans the ledger holds but the index lacks (or holds with other points), and index rows the
     ledger no longer has: what a run killed after its ledger commits left uncatalogued."""
     from archive.catalog.index import points_checksums
     from archive.catalog.store import Shelf, multihash_sha256
 
     listed = points_checksums(Shelf(str(shelf)))
-    behind = {r.scan_id for r in records if listed.get(r.scan_id) != multihash_sha256(r.points_sha256)}
-    return behind, set(listed) - {r.scan_id for r in records}
+    behind = {scan_id for scan_id, sha in checksums.items() if listed.get(scan_id) != multihash_sha256(sha)}
+    return behind, set(listed) - set(checksums)
 
 
 def _repair_cube(cube: Path) -> None:
@@ -626,14 +635,20 @@ def _ingest_grids(fs, root, reports, recipe, shelf: Path, ledger: Ledger, result
 
 
 def _remove_leftovers(shelf: Path) -> None:
-    """Temporary files and spill folders of a killed run are never part of the shelf."""
+    """Temporary files and spill folders of a killed run are never part of the shelf.
+
+    One walk with name tests (recursive globs over a shelf of thousands of files cost seconds).
+    """
     import shutil
 
-    for pattern in ("points/**/*.part-*", "previews/*.part-*", "points/**/.scanshelf-spill-*", "scans/**/*.part-*",
-                    "scans/items.parquet.part-*", "grids/collection.json.part-*", "catalog.json.part-*",
-                    "grids/*.tmp-*", "grids/**/*.partial", "survey.parquet.part", f".{layout.REPORT}.part-*"):
-        for p in shelf.glob(pattern):
-            if p.is_dir():
-                shutil.rmtree(p, ignore_errors=True)
+    for folder, dirs, files in os.walk(shelf):
+        for name in [*dirs, *files]:
+            if not any(fnmatch.fnmatchcase(name, p) for p in LEFTOVERS):
+                continue
+            path = os.path.join(folder, name)
+            if os.path.isdir(path) and not os.path.islink(path):
+                shutil.rmtree(path, ignore_errors=True)
             else:
-                p.unlink(missing_ok=True)
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(path)
+        dirs[:] = [d for d in dirs if not any(fnmatch.fnmatchcase(d, p) for p in LEFTOVERS)]

@@ -22,3 +22,20 @@ def join(root: str, relpath: str) -> str:
 
 def is_local(fs) -> bool:
     return isinstance(fs, fsspec.implementations.local.LocalFileSystem)
+
+
+def find_files(fs, root: str) -> dict[str, dict[str, Any]]:
+    """Path → {"size", "mtime"} of every file below ``root``, as ``fs.find(detail=True)`` gives.
+
+    On a local disk this walks with ``os.scandir`` directly: several times faster than fsspec's
+    per-file ``info`` on a cube of thousands of objects, which every catalog update lists.
+    """
+    if not is_local(fs):
+        return {p: i for p, i in fs.find(root, detail=True).items() if i.get("type") == "file"}
+    out: dict[str, dict[str, Any]] = {}
+    for folder, _, files in os.walk(root):
+        for name in files:
+            path = os.path.join(folder, name)
+            st = os.stat(path)
+            out[path] = {"size": st.st_size, "mtime": st.st_mtime}
+    return out

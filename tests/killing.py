@@ -219,7 +219,8 @@ def shelf_state(root: Path) -> dict[str, object]:
     Timestamps, found by diffing two clean runs of the same source: the Items' ``published``
     (and its copy in the items index, hence the index's checksum on the scans Collection's link to
     it), the ledger's ``updated``/``replaced`` columns, and the
-    "made <time>" line of the health page ``index.html`` (which also names the shelf's folder).
+    "made <time>" line of the health page ``index.html`` (which also names the shelf's folder) and
+    the keys of its map blocks (they hash the cube objects' modification times).
     Everything else is byte-identical between clean runs.
     """
     state: dict[str, object] = {}
@@ -243,7 +244,9 @@ def shelf_state(root: Path) -> dict[str, object]:
             state[rel] = doc
         elif rel == "index.html":  # the health page names the shelf's folder and the time it was made
             page = p.read_bytes().replace(str(root).encode(), b"<shelf>")
-            state[rel] = hashlib.sha256(re.sub(rb"made \d{4}-\d\d-\d\d \d\d:\d\d UTC", b"made <time>", page)).hexdigest()
+            page = re.sub(rb"made \d{4}-\d\d-\d\d \d\d:\d\d UTC", b"made <time>", page)
+            page = re.sub(rb"<!-- scanshelf-maps [0-9a-f]{64} -->", b"<!-- scanshelf-maps <key> -->", page)
+            state[rel] = hashlib.sha256(page).hexdigest()
         elif rel.startswith("points/") and rel.endswith(".parquet"):
             state[rel] = ("decoded", _points(p), "bytes", hashlib.sha256(p.read_bytes()).hexdigest())
         else:

@@ -14,6 +14,7 @@ import numpy as np
 
 from archive.catalog.collections import GridInfo
 from archive.catalog.store import Shelf, multihash_sha256
+from archive.storage import find_files
 
 
 class HashMemo(Protocol):
@@ -37,9 +38,7 @@ def store_fingerprint(shelf: Shelf, href: str, memo: HashMemo | None = None) -> 
     known = memo.object_hashes(href) if memo is not None else {}
     seen: dict[str, tuple[int, float, str]] = {}
     digest, total = hashlib.sha256(), 0
-    for path, info in sorted(shelf.fs.find(base, detail=True).items()):
-        if info["type"] != "file":
-            continue
+    for path, info in sorted(find_files(shelf.fs, base).items()):
         rel = path[len(base) + 1 :] if path.startswith(base + "/") else path
         size, mtime = int(info["size"]), info.get("mtime")
         hit = known.get(rel)

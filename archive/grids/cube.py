@@ -209,12 +209,15 @@ def open_cube(
         raise ValueError("layout must be 'map' or 'series'")
     # dask chunks = whole shards: one request per epoch map (see FIELD-NOTES "Zarr v3"); the
     # 1-D time coordinates are stored in longer chunks, which xarray warns about: harmless here
+    store = zarr_store(url, storage_options)
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message="The specified chunks separate", category=UserWarning)
-        root = xr.open_zarr(zarr_store(url, storage_options), zarr_format=3, consolidated=True,
-                            chunks={"time": 1, "y": -1, "x": -1})
-    root = root.assign_coords(scan_id=root["scan_id"].load())
-    root["points_outside"] = root["points_outside"].load()
+        root = xr.open_zarr(store, zarr_format=3, consolidated=True, chunks={"time": 1, "y": -1, "x": -1})
+    # the 1-D variables are read whole, without dask: through the chunks above, a cube of N
+    # epochs would read its one scan_id object N times
+    small = xr.open_zarr(store, zarr_format=3, consolidated=True, chunks=None)
+    root = root.assign_coords(scan_id=small["scan_id"].load())
+    root["points_outside"] = small["points_outside"].load()
     if layout == "series":
         try:
             ds = xr.open_zarr(zarr_store(url, storage_options), group=SERIES_GROUP, zarr_format=3,
@@ -229,6 +232,8 @@ def open_cube(
     ok = root["scan_id"].values != ""
     if not ok.all():
         root = root.isel(time=np.flatnonzero(ok))
+    if root.indexes["time"].is_monotonic_increasing:  # appended in time order: no reindexing graph
+        return root
     return root.sortby("time")
 
 

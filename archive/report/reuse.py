@@ -14,7 +14,7 @@ import hashlib
 import re
 
 from archive.catalog.items import software_version
-from archive.storage import filesystem, is_local
+from archive.storage import filesystem, find_files, is_local
 
 _BLOCK = re.compile(r"<!-- scanshelf-maps ([0-9a-f]{64}) -->(.*?)<!-- /scanshelf-maps -->", re.S)
 
@@ -25,7 +25,7 @@ def cube_key(station: str, cube_url: str, storage_options: dict | None = None) -
     if not is_local(fs) or not fs.isdir(root):
         return None
     digest = hashlib.sha256(f"{station}\n{software_version()}\n".encode())
-    for path, info in sorted(fs.find(root, detail=True).items()):
+    for path, info in sorted(find_files(fs, root).items()):
         digest.update(f"{path[len(root):]}\t{info['size']}\t{info.get('mtime')}\n".encode())
     return digest.hexdigest()
 
