@@ -80,3 +80,14 @@ def test_example_recipe_matches_recipe_schema() -> None:
     for bad in ({"grids": {"cell": 0}}, {"paths": {"station": "^([^/]+)/"}}, {"colour": "red"},
                 {"catalog": {"providers": [{"roles": ["producer"]}]}}):
         assert list(validator.iter_errors(bad)), bad
+
+
+def test_wheels_carry_every_schema() -> None:
+    """pyproject's package-data globs (setuptools) must cover every file of catalog_schema/, which
+    wheels install as archive/catalog_schema, or an installed scanshelf cannot validate offline."""
+    config = tomllib.loads((ROOT / "pyproject.toml").read_text())["tool"]["setuptools"]
+    assert config["package-dir"]["archive.catalog_schema"] == "catalog_schema"
+    shipped = {p for pattern in config["package-data"]["archive.catalog_schema"]
+               for p in (ROOT / "catalog_schema").glob(pattern)}
+    assert set(SCHEMAS) == shipped and shipped
+    assert set(ext.LOCAL_SCHEMAS.values()) <= {str(p.relative_to(ROOT / "catalog_schema")) for p in shipped}

@@ -20,7 +20,12 @@ SCANSHELF = "https://scanshelf.example/catalog_schema/v1.0.0/schema.json"
 
 PREFIX = "scanshelf:"
 
-SCHEMA_DIR = Path(__file__).resolve().parents[2] / "catalog_schema"
+_HERE = Path(__file__).resolve()
+# the source tree's top-level folder, else the copy a wheel installs inside the package
+SCHEMA_DIR = next(
+    (d for d in (_HERE.parents[2] / "catalog_schema", _HERE.parents[1] / "catalog_schema") if d.is_dir()),
+    _HERE.parents[2] / "catalog_schema",
+)
 
 LOCAL_SCHEMAS: dict[str, str] = {
     POINTCLOUD: "extensions/pointcloud-v2.0.0.json",
@@ -44,7 +49,7 @@ def local_schema_path(url: str) -> Path:
         ) from None
     if not path.is_file():
         raise FileNotFoundError(
-            f"{path} is missing: catalog_schema/ must ship beside the archive package "
-            "(install scanshelf from its source tree)"
+            f"{path} is missing: reinstall scanshelf (its wheel carries catalog_schema/ inside "
+            "the archive package)"
         )
     return path
