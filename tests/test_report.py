@@ -107,6 +107,13 @@ def test_self_contained_no_scripts_and_relative_links_resolve(report):
     assert "points/station=north/year=2026/north-20260901T060000Z.parquet" in files
 
 
+def test_the_root_page_names_no_local_folder(report):
+    shelf, _, _ = report
+    text = (shelf / layout.REPORT).read_text("utf-8")
+    assert str(shelf) not in text and str(shelf.parent) not in text  # it is published as is
+    assert "the folder of this page" in text
+
+
 def test_unchanged_stations_keep_their_maps_and_changed_ones_are_redrawn(report, tmp_path, monkeypatch):
     from archive.report import charts
 

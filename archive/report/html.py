@@ -309,6 +309,8 @@ def _page(health: ShelfHealth, sections: list[str], base: str, gap_factor: float
     nav = " ".join(f'<a href="#station-{html.escape(s)}">{html.escape(s)}</a>' for s in health.stations)
     providers = ", ".join(health.providers) or "not given"
     unassigned = _problem_table(health.unassigned, "Files not tied to a station") if health.unassigned else ""
+    # a page at the shelf's root is published with it: it names no local folder
+    where = "the folder of this page" if base == "" else f"<code>{html.escape(health.url)}</code>"
     body = "\n".join(sections) or '<p class="quiet">This shelf holds no scans yet.</p>'
     return f"""<!doctype html>
 <html lang="en">
@@ -327,7 +329,7 @@ def _page(health: ShelfHealth, sections: list[str], base: str, gap_factor: float
 <dl class="meta">
 <div><dt>licence</dt><dd>{html.escape(health.license or "not given")}</dd></div>
 <div><dt>provider</dt><dd>{html.escape(providers)}</dd></div>
-<div><dt>shelf</dt><dd><code>{html.escape(health.url)}</code></dd></div>
+<div><dt>shelf</dt><dd>{where}</dd></div>
 <div><dt>problems read from</dt><dd>{html.escape(", ".join(health.problem_sources))}</dd></div>
 </dl>
 <div class="tally">{tally}</div>
