@@ -129,6 +129,23 @@ def test_verification_failure_keeps_the_root_away(shelf_dir, monkeypatch):
     assert not fs.exists(f"{base}/{layout.SCANS_INDEX}")
 
 
+def test_cli_retries_sets_the_attempts_per_file(shelf_dir, monkeypatch):
+    root, _ = shelf_dir
+    real = MemoryFileSystem.put_file
+    attempts: dict[str, int] = {}
+
+    def truncating(self, lpath, rpath, *a, **k):
+        real(self, lpath, rpath, *a, **k)
+        if rpath.endswith(".parquet") and "/points/" in rpath:
+            attempts[rpath] = attempts.get(rpath, 0) + 1
+            self.pipe_file(rpath, self.cat_file(rpath)[:-1])
+
+    monkeypatch.setattr(MemoryFileSystem, "put_file", truncating)
+    result = CliRunner().invoke(publish_command, [str(root), memory_url(), "--retries", "2", "-q"])
+    assert result.exit_code != 0 and "did not verify" in result.output
+    assert attempts and set(attempts.values()) == {2}, attempts
+
+
 def test_dry_run_writes_nothing(shelf_dir):
     root, _ = shelf_dir
     dest = memory_url()

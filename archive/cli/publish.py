@@ -7,6 +7,7 @@ import sys
 import click
 
 from archive.cli.common import parse_storage_options
+from archive.publish import RETRIES
 
 STORAGE_OPTION_HELP = (
     "fsspec storage option KEY=VALUE (repeatable), e.g. endpoint_url=https://s3.example.org. "
@@ -22,9 +23,12 @@ STORAGE_OPTION_HELP = (
 @click.option("--workers", default=8, show_default=True, help="Parallel transfers.")
 @click.option("--no-verify", is_flag=True, help="Check sizes only after upload, not checksums.")
 @click.option("--rehash", is_flag=True, help="Hash same-size remote files instead of trusting the last manifest.")
+@click.option("--retries", default=RETRIES, show_default=True, type=click.IntRange(min=1),
+              help="Attempts per file (upload and read-back) before it is reported missing; "
+                   "the wait doubles from 0.5 s between attempts.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar and no summary line.")
 def publish(shelf: str, dest: str, storage_option: tuple[str, ...], dry_run: bool, workers: int,
-            no_verify: bool, rehash: bool, quiet: bool) -> None:
+            no_verify: bool, rehash: bool, retries: int, quiet: bool) -> None:
     """Copy the shelf SHELF to DEST (s3://, gs://, az://, a folder a web server serves, ...).
 
     Data goes first and catalog.json last, so readers never see a half-published shelf.
@@ -47,7 +51,7 @@ def publish(shelf: str, dest: str, storage_option: tuple[str, ...], dry_run: boo
     with tqdm(unit="B", unit_scale=True, desc="publish", disable=dry_run or quiet or None, file=sys.stderr) as bar:
         try:
             report = run(shelf, dest, options, dry_run=dry_run, workers=workers, verify=not no_verify,
-                         rehash=rehash, progress=bar.update)
+                         rehash=rehash, retries=retries, progress=bar.update)
         except PublishError as e:
             raise click.ClickException(str(e)) from None
     if dry_run:
