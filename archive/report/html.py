@@ -24,8 +24,8 @@ from archive import layout
 from archive.grids import open_cube, read_spec
 from archive.grids.change import epoch_change
 from archive.report import charts
-from archive.report.reuse import cube_key, earlier_blocks, wrap
 from archive.report.health import GAP_FACTOR, Problem, ShelfHealth, StationHealth, read_health
+from archive.report.reuse import cube_key, earlier_blocks, wrap
 from archive.storage import filesystem, is_local
 
 log = logging.getLogger(__name__)
