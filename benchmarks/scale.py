@@ -3,8 +3,10 @@
 The source is generated on the fly (never stored in the repository): scans of uncompressed
 LAS 1.4, point format 6, laid out the way a fixed scanner records them (azimuth columns,
 elevation rows, range growing with depression angle). Prints throughput with 1 and 2
-workers, the scaling ratio, peak RSS per worker process (sampled every 0.2 s), time per
-billion points, and the same for one single 200M-point scan.
+workers, the scaling ratio, peak RSS per worker process (sampled every 0.2 s), the CPU cores
+the whole process tree kept busy on average (a single worker is not a single core: Arrow's
+thread pool and the coordinating process run beside it), time per billion points, and the same
+for one single 200M-point scan.
 
     python benchmarks/scale.py [--points 500000000] [--scans 50] [--single 200000000] [--workers 1,2]
                                [--workdir DIR]
@@ -74,12 +76,12 @@ def make_source(root: Path, points: int, scans: int) -> None:
 
 
 class RssSampler(threading.Thread):
-    """Peak RSS of every process below this one, sampled every 0.2 s."""
+    """Peak RSS of every process below this one, and their CPU time, sampled every 0.2 s."""
 
     def __init__(self) -> None:
         super().__init__(daemon=True)
         self.peaks: dict[int, int] = {}
-        self.names: dict[int, str] = {}
+        self.cpu: dict[int, float] = {}  # last seen user + system seconds per process
         self._done = threading.Event()
 
     def run(self) -> None:
@@ -87,9 +89,10 @@ class RssSampler(threading.Thread):
         while not self._done.is_set():
             for p in me.children(recursive=True):
                 try:
-                    rss = p.memory_info().rss
+                    with p.oneshot():
+                        rss, times = p.memory_info().rss, p.cpu_times()
                     self.peaks[p.pid] = max(self.peaks.get(p.pid, 0), rss)
-                    self.names.setdefault(p.pid, " ".join(p.cmdline()[-2:]))
+                    self.cpu[p.pid] = times.user + times.system
                 except psutil.Error:
                     pass
             time.sleep(0.2)
@@ -99,19 +102,26 @@ class RssSampler(threading.Thread):
         self.join()
         return max(self.peaks.values(), default=0)
 
+    def child_cpu_seconds(self) -> float:
+        return sum(self.cpu.values())
 
-def run(source: Path, shelf: Path, workers: int) -> tuple[float, int, int]:
+
+def run(source: Path, shelf: Path, workers: int) -> tuple[float, int, int, float]:
+    """(wall seconds, points, peak RSS of a worker, CPU cores busy on average over the run)."""
     from archive.migrate import migrate
 
     shutil.rmtree(shelf, ignore_errors=True)
     sampler = RssSampler()
     sampler.start()
+    me = psutil.Process()
+    cpu0 = sum(me.cpu_times()[:2])
     t0 = time.perf_counter()
     result = migrate(str(source), str(shelf), workers=workers, previews=False, memory_per_worker=int(1.5 * 2**30))
     wall = time.perf_counter() - t0
     peak = sampler.stop()
+    cores = (sum(me.cpu_times()[:2]) - cpu0 + sampler.child_cpu_seconds()) / wall
     assert not result.failed, result.failed
-    return wall, result.points, peak
+    return wall, result.points, peak, cores
 
 
 def main() -> None:
@@ -129,15 +139,15 @@ def main() -> None:
     make_source(work / "source", args.points, args.scans)
     print(f"generated {args.points:,} points in {args.scans} LAS scans in {time.perf_counter() - t0:.0f} s", flush=True)
     header = (f"{'run':28s} {'points':>13s} {'wall s':>8s} {'Mpts/s':>8s} {'s per 1e9':>10s} "
-              f"{'peak RSS/worker MiB':>20s}")
+              f"{'peak RSS/worker MiB':>20s} {'cores busy':>11s}")
     print(header, flush=True)
     rows = []
 
-    def record(name: str, workers: int, wall: float, n: int, peak: int) -> None:
+    def record(name: str, workers: int, wall: float, n: int, peak: int, cores: float) -> None:
         # one line as soon as a run ends: a long benchmark cut short still leaves its figures
         rows.append((name, workers, wall, n, peak))
         print(f"{name:28s} {n:>13,} {wall:>8.1f} {n / wall / 1e6:>8.2f} {wall * 1e9 / n:>10.0f} "
-              f"{peak / 2**20:>20.0f}", flush=True)
+              f"{peak / 2**20:>20.0f} {cores:>11.2f}", flush=True)
 
     for workers in (int(w) for w in args.workers.split(",")):
         record(f"{args.scans} scans, {workers} worker(s)", workers, *run(work / "source", work / "shelf", workers))
