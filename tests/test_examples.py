@@ -83,3 +83,14 @@ def test_demo_change_map_shows_the_thinning(demo_run):
     # the ice thins by centimetres a day (demo model); weeks apart, a tenth of the cells drop > 0.3 m
     assert np.nanpercentile(d, 10) < -0.3
     assert abs(np.nanpercentile(d, 90)) < 0.1  # rock and the far slope stay put
+
+
+def test_the_script_exit_codes_and_flushed_output(tmp_path) -> None:
+    """`scanshelf` ends through archive.cli._end (os._exit after Python's exit handlers): codes and
+    output must come through as a normal exit would give them."""
+    ok = _run(["scanshelf", "--help"], cwd=tmp_path)
+    assert ok.returncode == 0 and "migrate" in ok.stdout
+    missing = _run(["scanshelf", "find", str(tmp_path / "nowhere")], cwd=tmp_path)
+    assert missing.returncode == 2 and "no catalog.json" in missing.stderr
+    unknown = _run(["scanshelf", "no-such-command"], cwd=tmp_path)
+    assert unknown.returncode == 2 and "No such command" in unknown.stderr
