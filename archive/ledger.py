@@ -184,9 +184,13 @@ class Ledger:
 
     def scans(self, ids: Iterable[str] | None = None) -> list[ScanRecord]:
         """Finished scans (those of ``ids`` only, if given), in scan id order."""
-        rows = self._db.execute("SELECT scan_id, record FROM scans WHERE status = 'done' ORDER BY scan_id").fetchall()
-        wanted = None if ids is None else set(ids)
-        return [ScanRecord.from_json(r) for i, r in rows if wanted is None or i in wanted]
+        if ids is None:
+            rows = self._db.execute("SELECT record FROM scans WHERE status = 'done' ORDER BY scan_id")
+        else:  # only the wanted records leave SQLite (an update of a big shelf wants a few)
+            rows = self._db.execute(
+                "SELECT record FROM scans WHERE status = 'done' AND scan_id IN (SELECT value FROM json_each(?)) "
+                "ORDER BY scan_id", (json.dumps(sorted(ids)),))
+        return [ScanRecord.from_json(r) for (r,) in rows.fetchall()]
 
     def scan_checksums(self) -> dict[str, str]:
         """Scan id → SHA-256 of its points file, for every finished scan, without parsing records."""

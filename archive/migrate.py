@@ -642,13 +642,12 @@ def _remove_leftovers(shelf: Path) -> None:
     import shutil
 
     for folder, dirs, files in os.walk(shelf):
-        for name in [*dirs, *files]:
-            if not any(fnmatch.fnmatchcase(name, p) for p in LEFTOVERS):
-                continue
+        doomed = {n for n in (*dirs, *files) if any(fnmatch.fnmatchcase(n, p) for p in LEFTOVERS)}
+        dirs[:] = [d for d in dirs if d not in doomed]  # not walked into: removed whole below
+        for name in doomed:
             path = os.path.join(folder, name)
             if os.path.isdir(path) and not os.path.islink(path):
                 shutil.rmtree(path, ignore_errors=True)
             else:
                 with contextlib.suppress(FileNotFoundError):
                     os.unlink(path)
-        dirs[:] = [d for d in dirs if not any(fnmatch.fnmatchcase(d, p) for p in LEFTOVERS)]

@@ -27,8 +27,8 @@ def is_local(fs) -> bool:
 def find_files(fs, root: str) -> dict[str, dict[str, Any]]:
     """Path → {"size", "mtime"} of every file below ``root``, as ``fs.find(detail=True)`` gives.
 
-    On a local disk this walks with ``os.scandir`` directly: several times faster than fsspec's
-    per-file ``info`` on a cube of thousands of objects, which every catalog update lists.
+    On a local disk this is a plain ``os.walk`` with one ``os.stat`` per file: about twice as
+    fast as fsspec's ``find`` on a cube of thousands of objects, which every catalog update lists.
     """
     if not is_local(fs):
         return {p: i for p, i in fs.find(root, detail=True).items() if i.get("type") == "file"}
