@@ -28,7 +28,7 @@ def check_station(station: str) -> str:
     if not _STATION_RE.match(station):
         raise ValueError(
             f"station id {station!r} must start with a letter or digit and hold only "
-            "letters, digits, '_' and '.'; set a station pattern or rename in the recipe"
+            "letters, digits, '_' and '.'; set a station pattern or rename in the site file"
         )
     return station
 

@@ -29,7 +29,7 @@ from archive.layout import ScanId
 from archive.ledger import Ledger
 from archive.points.hilbert import SiteGrid
 from archive.points.write import write_scan
-from archive.recipe import Recipe, load_recipe
+from archive.sitefile import SiteFile, load_site_file
 from archive.records import ScanRecord
 from archive.sources import SourceError, open_points
 from archive.storage import filesystem, join
@@ -58,7 +58,7 @@ class ScanTask:
     shelf: str
     site_grid: dict
     grid_spec: dict
-    recipe: Recipe
+    site_file: SiteFile
     salvage: bool
     chunk_points: int = CHUNK_POINTS
     memory_budget: int = MEMORY_BUDGET
@@ -126,7 +126,7 @@ class MigrateResult:
 def migrate(
     source: str,
     shelf: str,
-    recipe: Recipe | str | None = None,
+    site_file: SiteFile | str | None = None,
     crs: str | None = None,
     *,
     salvage: bool = False,
@@ -150,12 +150,12 @@ def migrate(
     see ``shelf`` at the same path, e.g. on a shared file system); each worker then keeps its
     sort within ``memory_per_worker``.
     """
-    if not isinstance(recipe, Recipe):
-        recipe = load_recipe(recipe, crs)
+    if not isinstance(site_file, SiteFile):
+        site_file = load_site_file(site_file, crs)
     else:
-        recipe = recipe.with_crs(crs)
+        site_file = site_file.with_crs(crs)
     if cell is not None:
-        recipe = replace(recipe, grid_cell=float(cell))
+        site_file = replace(site_file, grid_cell=float(cell))
     fs, root = filesystem(source, storage_options)
     if not fs.exists(root):
         raise FileNotFoundError(f"source {source} does not exist")
@@ -172,7 +172,7 @@ def migrate(
     else:
         executor = SerialExecutor()
     try:
-        _run(source, fs, root, shelf_path, recipe, result, executor, salvage=salvage, storage_options=storage_options,
+        _run(source, fs, root, shelf_path, site_file, result, executor, salvage=salvage, storage_options=storage_options,
              progress=progress, previews=previews, catalog=catalog, chunk_points=chunk_points,
              memory_budget=memory_budget, row_group_points=row_group_points)
     finally:
@@ -181,15 +181,15 @@ def migrate(
     return result
 
 
-def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResult, executor, *, salvage,
+def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: MigrateResult, executor, *, salvage,
          storage_options, progress, previews, catalog, chunk_points, memory_budget, row_group_points) -> None:
     with Ledger(shelf_path / layout.LEDGER) as ledger:
-        reports = _survey(fs, root, recipe, ledger, executor, progress)
+        reports = _survey(fs, root, site_file, ledger, executor, progress)
         _write_survey(shelf_path, source, reports)
         crash_point("survey.written")
         usable = [r for r in reports if r.kind == "points" and (r.status == "ok" or (salvage and r.status == "damaged"))]
-        site_grid = _site_grid(ledger, usable, recipe)
-        specs = _station_grids(ledger, usable, recipe)
+        site_grid = _site_grid(ledger, usable, site_file)
+        specs = _station_grids(ledger, usable, site_file)
         tasks, done_ids = [], set()
         for report in reports:
             _classify_outcome(report, ledger, result, salvage)
@@ -204,7 +204,7 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
                 ScanTask(
                     source=str(source), storage_options=storage_options or {}, path=join(root, report.relpath),
                     report=report, scan_id=scan_id, shelf=str(shelf_path), site_grid=site_grid.to_dict(),
-                    grid_spec=specs[report.station].to_dict(), recipe=recipe, salvage=salvage,
+                    grid_spec=specs[report.station].to_dict(), site_file=site_file, salvage=salvage,
                     chunk_points=chunk_points, memory_budget=memory_budget, row_group_points=row_group_points,
                     previews=previews,
                 )
@@ -217,11 +217,11 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
             bar.update(outcome.record.point_count if outcome.record else 0)
             bar.set_postfix_str(f"{len(result.converted)}/{len(tasks)} scans", refresh=False)
         bar.close()
-        _ingest_grids(fs, root, reports, recipe, shelf_path, ledger, result, storage_options)
+        _ingest_grids(fs, root, reports, site_file, shelf_path, ledger, result, storage_options)
         checksums = ledger.scan_checksums()
         result.scans_total = len(checksums)
         if catalog:
-            _write_catalog(shelf_path, checksums, result, recipe, ledger)
+            _write_catalog(shelf_path, checksums, result, site_file, ledger)
             if checksums and _report_stale(shelf_path):
                 from archive.report import write_index_html
 
@@ -232,9 +232,9 @@ def _run(source, fs, root, shelf_path: Path, recipe: Recipe, result: MigrateResu
 # --- survey and planning --------------------------------------------------------------------
 
 
-def _survey(fs, root: str, recipe: Recipe, ledger: Ledger, executor, progress: bool) -> list[FileReport]:
+def _survey(fs, root: str, site_file: SiteFile, ledger: Ledger, executor, progress: bool) -> list[FileReport]:
     """Inspect every file, reusing the ledger's cached inspection of unchanged files."""
-    entries = walk_source(fs, root, recipe)
+    entries = walk_source(fs, root, site_file)
     reports: dict[str, FileReport] = {}
     todo = []
     for path, relpath, size, mtime in entries:
@@ -244,8 +244,8 @@ def _survey(fs, root: str, recipe: Recipe, ledger: Ledger, executor, progress: b
         else:
             todo.append((path, relpath, size, mtime))
     bar = progress_bar(progress, total=sum(e[2] for e in todo), unit="B", desc="survey")
-    for (fs_, path, relpath, size, recipe_, mtime), report in executor.run(
-        _inspect_task, [(fs, p, r, s, recipe, m) for p, r, s, m in todo]
+    for (fs_, path, relpath, size, site_file_, mtime), report in executor.run(
+        _inspect_task, [(fs, p, r, s, site_file, m) for p, r, s, m in todo]
     ):
         if isinstance(report, BaseException):
             report = FileReport(relpath=relpath, size=size, kind="points", status="unusable", mtime=mtime,
@@ -264,8 +264,8 @@ def _survey(fs, root: str, recipe: Recipe, ledger: Ledger, executor, progress: b
 
 
 def _inspect_task(args) -> FileReport:
-    fs, path, relpath, size, recipe, mtime = args
-    return inspect_file(fs, path, relpath, size, recipe, deep=True, mtime=mtime)
+    fs, path, relpath, size, site_file, mtime = args
+    return inspect_file(fs, path, relpath, size, site_file, deep=True, mtime=mtime)
 
 
 def _report_to_json(report: FileReport) -> str:
@@ -288,7 +288,7 @@ def _write_survey(shelf: Path, source: str, reports: list[FileReport]) -> None:
     SurveyResult(str(source), reports).write(str(shelf / layout.SURVEY))
 
 
-def _site_grid(ledger: Ledger, usable: list[FileReport], recipe: Recipe) -> SiteGrid:
+def _site_grid(ledger: Ledger, usable: list[FileReport], site_file: SiteFile) -> SiteGrid:
     """The Hilbert grid is fixed by the first migration so later scans sort on the same curve."""
     stored = ledger.setting("site_grid")
     if stored is not None:
@@ -302,8 +302,8 @@ def _site_grid(ledger: Ledger, usable: list[FileReport], recipe: Recipe) -> Site
     return grid
 
 
-def _station_grids(ledger: Ledger, usable: list[FileReport], recipe: Recipe) -> dict[str, GridSpec]:
-    """One fixed grid per station: the recipe's extent, else all its scans' bounds plus a margin."""
+def _station_grids(ledger: Ledger, usable: list[FileReport], site_file: SiteFile) -> dict[str, GridSpec]:
+    """One fixed grid per station: the site file's extent, else all its scans' bounds plus a margin."""
     specs = {k: GridSpec.from_dict(v) for k, v in (ledger.setting("station_grids") or {}).items()}
     by_station: dict[str, list[FileReport]] = {}
     for r in usable:
@@ -312,14 +312,14 @@ def _station_grids(ledger: Ledger, usable: list[FileReport], recipe: Recipe) -> 
         if station in specs:
             continue
         crs = Counter(r.crs_wkt for r in reports).most_common(1)[0][0]
-        extent = recipe.grid_extent(station)
+        extent = site_file.grid_extent(station)
         if extent is None:
             b = np.array([r.bounds for r in reports if r.bounds])
             extent = (b[:, 0].min(), b[:, 1].min(), b[:, 3].max(), b[:, 4].max())
-            margin = recipe.grid_margin
+            margin = site_file.grid_margin
         else:
             margin = 0.0
-        specs[station] = GridSpec.from_bounds(station, extent, recipe.grid_cell, margin, crs)
+        specs[station] = GridSpec.from_bounds(station, extent, site_file.grid_cell, margin, crs)
     ledger.set_setting("station_grids", {k: v.to_dict() for k, v in specs.items()})
     return specs
 
@@ -358,11 +358,11 @@ def convert_scan(task: ScanTask) -> ScanOutcome:
 def _convert(task: ScanTask) -> ScanOutcome:
     from archive.catalog.footprint import outline
 
-    report, recipe = task.report, task.recipe
+    report, site_file = task.report, task.site_file
     fs, _ = filesystem(task.source, task.storage_options)
     with fs.open(task.path, "rb") as fh:
         head = fh.read(4096)
-    reader = open_points(fs, task.path, report.relpath, report.size, head, recipe)
+    reader = open_points(fs, task.path, report.relpath, report.size, head, site_file)
     scan = ScanId.parse(task.scan_id)
     relative = layout.points_path(scan)
     final = Path(task.shelf) / relative
@@ -411,7 +411,7 @@ def _convert(task: ScanTask) -> ScanOutcome:
         columns=written.columns,
         source_path=report.relpath, source_sha256=report.sha256, source_format=reader.header.format,
         partial=bool(tally.problems) or report.status == "damaged", problems=problems,
-        scanner_origin=recipe.station_origin(scan.station),
+        scanner_origin=site_file.station_origin(scan.station),
         footprint=outline(_coarse(epoch.point_count > 0, spec), _coarse_transform(spec), spec.crs_wkt) if epoch.inside else None,
         preview_href=preview, grid_href=layout.grid_path(scan.station),
         extra={"outside_grid": epoch.outside, "point_format": reader.header.point_format, "version": reader.header.version},
@@ -508,7 +508,7 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
         result.partial.append(record.scan_id)
 
 
-def _write_catalog(shelf: Path, checksums: dict[str, str], result: MigrateResult, recipe: Recipe,
+def _write_catalog(shelf: Path, checksums: dict[str, str], result: MigrateResult, site_file: SiteFile,
                    ledger: Ledger) -> None:
     """Whole catalog on the first run; afterwards only the new Items plus collections, index and root.
 
@@ -524,10 +524,10 @@ def _write_catalog(shelf: Path, checksums: dict[str, str], result: MigrateResult
     if have_catalog and not changed and not removed and not result.grids:
         return
     if have_catalog:
-        update_catalog(str(shelf), ledger.scans(changed), removed_ids=removed, settings=recipe.catalog or None,
+        update_catalog(str(shelf), ledger.scans(changed), removed_ids=removed, settings=site_file.catalog or None,
                        memo=ledger)
     else:
-        build_catalog(str(shelf), ledger.scans(), settings=recipe.catalog, memo=ledger)
+        build_catalog(str(shelf), ledger.scans(), settings=site_file.catalog, memo=ledger)
 
 
 def _report_stale(shelf: Path) -> bool:
@@ -597,7 +597,7 @@ def _blank_time_step(cube: Path, scan_id: str) -> None:
         group["scan_id"][int(i)] = ""
 
 
-def _ingest_grids(fs, root, reports, recipe, shelf: Path, ledger: Ledger, result: MigrateResult, storage_options) -> None:
+def _ingest_grids(fs, root, reports, site_file, shelf: Path, ledger: Ledger, result: MigrateResult, storage_options) -> None:
     for report in reports:
         if report.kind != "grid":
             continue
@@ -615,12 +615,12 @@ def _ingest_grids(fs, root, reports, recipe, shelf: Path, ledger: Ledger, result
             continue
         from archive.grids import ingest_grid
 
-        rule = recipe.grid_rule(report.relpath)
+        rule = site_file.grid_rule(report.relpath)
         try:
             ingested = ingest_grid(
                 join(root, report.relpath), str(shelf), report.station,
                 product=(rule.product if rule else None) or report.product,
-                crs=(rule.crs if rule else None) or recipe.crs, time=report.scan_time,
+                crs=(rule.crs if rule else None) or site_file.crs, time=report.scan_time,
                 storage_options=storage_options,
             )
         except (SourceError, ValueError, OSError) as exc:

@@ -20,7 +20,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from archive.layout import check_station
-from archive.recipe import Recipe, load_recipe
+from archive.sitefile import SiteFile, load_site_file
 from archive.sources import SourceError, classify, open_points, scan_time_of
 from archive.storage import filesystem
 from archive.timeutil import parse_stamp
@@ -48,7 +48,7 @@ class FileReport:
     point_count: int | None = None  # points that can be read
     bounds: tuple[float, ...] | None = None  # xmin ymin zmin xmax ymax zmax of the readable points
     crs_wkt: str | None = None
-    crs_source: str | None = None  # file | recipe
+    crs_source: str | None = None  # file | site_file
     product: str | None = None  # grid files
     columns: tuple[str, ...] = ()
     duplicate_of: str | None = None
@@ -133,7 +133,7 @@ class SurveyResult:
         return "\n".join(lines)
 
 
-def walk_source(fs, root: str, recipe: Recipe) -> list[tuple[str, str, int, float | None]]:
+def walk_source(fs, root: str, site_file: SiteFile) -> list[tuple[str, str, int, float | None]]:
     """(path, relpath, size, mtime) of every file under root, sorted, with include/exclude applied."""
     found = fs.find(root, detail=True, withdirs=False)
     out = []
@@ -141,7 +141,7 @@ def walk_source(fs, root: str, recipe: Recipe) -> list[tuple[str, str, int, floa
         if info.get("type") == "directory":
             continue
         relpath = path[len(root) :].lstrip("/") if path.startswith(root) else PurePosixPath(path).name
-        if not _selected(relpath, recipe):
+        if not _selected(relpath, site_file):
             continue
         out.append((path, relpath, int(info.get("size") or 0), info.get("mtime") or info.get("LastModified")))
     out.sort(key=lambda t: t[1])
@@ -169,33 +169,33 @@ def _match(relpath: str, pattern: str) -> bool:
     return False
 
 
-def _selected(relpath: str, recipe: Recipe) -> bool:
-    return any(_match(relpath, p) for p in recipe.include) and not any(_match(relpath, p) for p in recipe.exclude)
+def _selected(relpath: str, site_file: SiteFile) -> bool:
+    return any(_match(relpath, p) for p in site_file.include) and not any(_match(relpath, p) for p in site_file.exclude)
 
 
-def station_of(relpath: str, recipe: Recipe) -> str:
-    """Station id from the path: the recipe's pattern (default: the first folder), renamed by [stations]."""
-    m = re.search(recipe.station_pattern, relpath)
+def station_of(relpath: str, site_file: SiteFile) -> str:
+    """Station id from the path: the site file's pattern (default: the first folder), renamed by [stations]."""
+    m = re.search(site_file.station_pattern, relpath)
     if not m or not m.group("station"):
         raise SourceError(
             f"{relpath}: cannot tell the station from the path; put the file in a station folder "
-            "or set [paths] station in the recipe"
+            "or set [paths] station in the site file"
         )
     folder = m.group("station")
-    rule = recipe.station_rule(folder)
+    rule = site_file.station_rule(folder)
     if rule is not None:
         return check_station(rule.id)
     plain = re.sub(r"[^A-Za-z0-9_.]+", "_", folder).strip("_.")
     if not plain:
-        raise SourceError(f"{relpath}: folder {folder!r} gives no usable station id; map it in the recipe [stations]")
+        raise SourceError(f"{relpath}: folder {folder!r} gives no usable station id; map it in the site file [stations]")
     return check_station(plain)
 
 
-def stamp_of(relpath: str, recipe: Recipe) -> datetime | None:
-    """Scan time from the recipe's time pattern, tried on the file name first, then the whole path."""
+def stamp_of(relpath: str, site_file: SiteFile) -> datetime | None:
+    """Scan time from the site file's time pattern, tried on the file name first, then the whole path."""
     for text in (PurePosixPath(relpath).name, relpath):
-        m = re.search(recipe.time_pattern, text)
-        if m and (stamp := parse_stamp(m.group("time"), recipe.zone)) is not None:
+        m = re.search(site_file.time_pattern, text)
+        if m and (stamp := parse_stamp(m.group("time"), site_file.zone)) is not None:
             return stamp
     return None
 
@@ -208,7 +208,7 @@ def file_sha256(fs, path: str) -> str:
     return digest.hexdigest()
 
 
-def inspect_file(fs, path: str, relpath: str, size: int, recipe: Recipe, *, deep: bool = True, mtime=None) -> FileReport:
+def inspect_file(fs, path: str, relpath: str, size: int, site_file: SiteFile, *, deep: bool = True, mtime=None) -> FileReport:
     """Everything the survey reports about one file; never raises for a bad file."""
     report = FileReport(relpath=relpath, size=size, kind="other", mtime=mtime)
     try:
@@ -226,20 +226,20 @@ def inspect_file(fs, path: str, relpath: str, size: int, recipe: Recipe, *, deep
             report.problems.append("not a point or grid file; ignored")
         return report
     try:
-        report.station = station_of(relpath, recipe)
+        report.station = station_of(relpath, site_file)
     except (SourceError, ValueError) as exc:
         report.status = "unusable"
         report.problems.append(_reason(exc, relpath))
         return report
     if report.kind == "grid":
-        return _inspect_grid(fs, path, report, recipe)
-    return _inspect_points(fs, path, head, report, recipe, deep)
+        return _inspect_grid(fs, path, report, site_file)
+    return _inspect_points(fs, path, head, report, site_file, deep)
 
 
-def _inspect_points(fs, path: str, head: bytes, report: FileReport, recipe: Recipe, deep: bool) -> FileReport:
+def _inspect_points(fs, path: str, head: bytes, report: FileReport, site_file: SiteFile, deep: bool) -> FileReport:
     relpath = report.relpath
     try:
-        reader = open_points(fs, path, relpath, report.size, head, recipe)
+        reader = open_points(fs, path, relpath, report.size, head, site_file)
     except SourceError as exc:
         report.status = "unusable"
         report.problems.append(_reason(exc, relpath))
@@ -267,21 +267,21 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, recipe: Reci
     if time is not None:
         report.scan_time, report.time_source = time, "gps"
     else:
-        stamp = stamp_of(relpath, recipe)
+        stamp = stamp_of(relpath, site_file)
         if stamp is not None:
             report.scan_time, report.time_source = stamp, "name"
     if h.crs_wkt:
         report.crs_wkt, report.crs_source = h.crs_wkt, "file"
-    elif recipe.crs:
-        report.crs_wkt, report.crs_source = _wkt(recipe.crs), "recipe"
+    elif site_file.crs:
+        report.crs_wkt, report.crs_source = _wkt(site_file.crs), "site_file"
     unusable = []
     if report.scan_time is None:
         unusable.append(
             "no scan time: the points carry no absolute GPS time and the name has no YYYYMMDD_HHMMSS stamp; "
-            "rename the file or set [paths] time in the recipe"
+            "rename the file or set [paths] time in the site file"
         )
     if report.crs_wkt is None:
-        unusable.append("no CRS in the file; give --crs EPSG:XXXX or [site] crs in the recipe")
+        unusable.append("no CRS in the file; give --crs EPSG:XXXX or [site] crs in the site file")
     if (report.point_count or 0) == 0 and deep:
         unusable.append("no readable points")
     report.problems.extend(unusable)
@@ -292,11 +292,11 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, recipe: Reci
     return report
 
 
-def _inspect_grid(fs, path: str, report: FileReport, recipe: Recipe) -> FileReport:
+def _inspect_grid(fs, path: str, report: FileReport, site_file: SiteFile) -> FileReport:
     from archive.sources.grids import probe_grid
 
     try:
-        info = probe_grid(fs, path, report.relpath, recipe)
+        info = probe_grid(fs, path, report.relpath, site_file)
     except (SourceError, ValueError, OSError) as exc:
         report.status = "unusable"
         report.problems.append(_reason(exc, report.relpath))
@@ -310,7 +310,7 @@ def _inspect_grid(fs, path: str, report: FileReport, recipe: Recipe) -> FileRepo
     report.time_source = "name" if info.time else None
     if report.crs_wkt is None:
         report.status = "unusable"
-        report.problems.append("grid has no CRS; set crs in a recipe [[grids.files]] rule or give --crs")
+        report.problems.append("grid has no CRS; set crs in a site file [[grids.files]] rule or give --crs")
     return report
 
 
@@ -353,7 +353,7 @@ def mark_duplicates(files: Iterable[FileReport]) -> None:
 
 def survey(
     source: str,
-    recipe: Recipe | str | None = None,
+    site_file: SiteFile | str | None = None,
     crs: str | None = None,
     *,
     storage_options: dict | None = None,
@@ -361,18 +361,18 @@ def survey(
     progress: bool = False,
 ) -> SurveyResult:
     """Inventory a source (local path or fsspec URL). Always walks every file; never raises for bad ones."""
-    if not isinstance(recipe, Recipe):
-        recipe = load_recipe(recipe, crs)
+    if not isinstance(site_file, SiteFile):
+        site_file = load_site_file(site_file, crs)
     else:
-        recipe = recipe.with_crs(crs)
+        site_file = site_file.with_crs(crs)
     fs, root = filesystem(source, storage_options)
     if not fs.exists(root):
         raise FileNotFoundError(f"source {source} does not exist")
-    entries = walk_source(fs, root, recipe)
+    entries = walk_source(fs, root, site_file)
     files = []
     bar = progress_bar(progress, total=sum(e[2] for e in entries), unit="B", desc="survey")
     for path, relpath, size, mtime in entries:
-        files.append(inspect_file(fs, path, relpath, size, recipe, deep=deep, mtime=mtime))
+        files.append(inspect_file(fs, path, relpath, size, site_file, deep=deep, mtime=mtime))
         bar.update(size)
     bar.close()
     mark_duplicates(files)

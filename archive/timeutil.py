@@ -48,7 +48,7 @@ def utc_to_adjusted_gps(when: datetime) -> float:
 
 
 def to_utc(value: datetime, zone: tzinfo = timezone.utc) -> datetime:
-    """Naive datetimes are taken to be in ``zone`` (UTC unless a recipe says otherwise)."""
+    """Naive datetimes are taken to be in ``zone`` (UTC unless a site file says otherwise)."""
     if value.tzinfo is None:
         value = value.replace(tzinfo=zone)
     return value.astimezone(timezone.utc)

@@ -16,7 +16,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 from archive import layout
-from archive.recipe import Recipe
+from archive.sitefile import SiteFile
 
 log = logging.getLogger(__name__)
 
@@ -75,7 +75,7 @@ def watch(
     every: float | str = 600,
     publish_to: str | None = None,
     rounds: int | None = None,
-    recipe: Recipe | str | None = None,
+    site_file: SiteFile | str | None = None,
     crs: str | None = None,
     *,
     salvage: bool = False,
@@ -98,7 +98,7 @@ def watch(
     try:
         while rounds is None or number < rounds:
             number += 1
-            one = _round(number, source, shelf, publish_to, recipe, crs, salvage, storage_options,
+            one = _round(number, source, shelf, publish_to, site_file, crs, salvage, storage_options,
                          publish_options, report, failing)
             result.rounds.append(one)
             log.info("%s", one.line())
@@ -113,7 +113,7 @@ def watch(
     return result
 
 
-def _round(number: int, source: str, shelf: str, publish_to: str | None, recipe, crs, salvage: bool,
+def _round(number: int, source: str, shelf: str, publish_to: str | None, site_file, crs, salvage: bool,
            storage_options: dict | None, publish_options: dict | None, report: bool,
            failing: set[str]) -> RoundResult:
     from archive.migrate import migrate
@@ -122,7 +122,7 @@ def _round(number: int, source: str, shelf: str, publish_to: str | None, recipe,
     one = RoundResult(number)
     problems_changed = False
     try:
-        migrated = migrate(source, shelf, recipe, crs, salvage=salvage, storage_options=storage_options)
+        migrated = migrate(source, shelf, site_file, crs, salvage=salvage, storage_options=storage_options)
     except UNREACHABLE as exc:
         one.errors.append(f"migrate: {type(exc).__name__}: {exc}")
     else:

@@ -58,7 +58,7 @@ def build(work: Path, points_per_scan: int, row_group_points: int | None) -> Non
     make_demo(work / "demo", points_per_scan=points_per_scan, weeks=1, faults=False, overwrite=True)
     t1 = time.perf_counter()
     extra = {"row_group_points": row_group_points} if row_group_points else {}
-    migrate(str(work / "demo/source"), str(work / "shelf"), recipe=str(work / "demo/recipe.toml"),
+    migrate(str(work / "demo/source"), str(work / "shelf"), site_file=str(work / "demo/site.toml"),
             previews=False, **extra)
     print(f"demo source {t1 - t:.0f} s, migrate {time.perf_counter() - t1:.0f} s: {work / 'shelf'}")
 

@@ -40,7 +40,7 @@ def demo_shelf(work: Path) -> str:
     from archive.publish import publish
 
     make_demo(work / "demo", points_per_scan=5_000, weeks=2, overwrite=True)
-    migrate(str(work / "demo/source"), str(work / "shelf"), recipe=str(work / "demo/recipe.toml"))
+    migrate(str(work / "demo/source"), str(work / "shelf"), site_file=str(work / "demo/site.toml"))
     publish(str(work / "shelf"), str(work / "www/site"))
     return str(work / "www/site")
 

@@ -13,12 +13,12 @@ scanshelf demo "$work"
 
 echo "== 2. survey it: the planted faults make the exit code 1, as they should =="
 status=0
-scanshelf survey "$work/source" --recipe "$work/recipe.toml" -o "$work/survey.parquet" -q || status=$?
+scanshelf survey "$work/source" --site "$work/site.toml" -o "$work/survey.parquet" -q || status=$?
 [ "$status" -eq 1 ] || { echo "survey should report the planted faults (exit 1), got $status"; exit 1; }
 
 echo "== 3. migrate every scan and grid into a shelf (faults listed, exit code 1 again) =="
 status=0
-scanshelf migrate "$work/source" "$work/shelf" --recipe "$work/recipe.toml" -q || status=$?
+scanshelf migrate "$work/source" "$work/shelf" --site "$work/site.toml" -q || status=$?
 [ "$status" -eq 1 ] || { echo "migrate should list the skipped files (exit 1), got $status"; exit 1; }
 
 echo "== 4. verify the catalog offline and every checksum =="

@@ -435,7 +435,7 @@ def test_update_writes_only_new_items(shelf) -> None:
     assert report.ok, report.summary()
 
 
-def test_placeholders_when_recipe_says_nothing(tmp_path: Path) -> None:
+def test_placeholders_when_site_file_says_nothing(tmp_path: Path) -> None:
     root = tmp_path / "s"
     build_catalog(str(root), [make_scan(root, "north", T0)], [], {})
     coll = json.loads((root / "scans/collection.json").read_text())
@@ -483,10 +483,10 @@ def test_cli_rebuilds_from_ledger_and_verify_exits_nonzero(shelf, tmp_path: Path
     db.executemany("INSERT INTO scans VALUES (?, ?, 'done', ?)", [(r.scan_id, r.station, r.to_json()) for r in records])
     db.commit()
     db.close()
-    recipe = tmp_path / "recipe.toml"
-    recipe.write_text('[catalog]\nlicense = "CC0-1.0"\ntitle = "Rebuilt"\n')
+    site_file = tmp_path / "site.toml"
+    site_file.write_text('[catalog]\nlicense = "CC0-1.0"\ntitle = "Rebuilt"\n')
     runner = CliRunner()
-    out = runner.invoke(catalog_command, [str(root), "--recipe", str(recipe)])
+    out = runner.invoke(catalog_command, [str(root), "--site", str(site_file)])
     assert out.exit_code == 0, out.output
     assert "3 scans and 1 grid cubes" in out.output
     assert json.loads((root / "scans/collection.json").read_text())["license"] == "CC0-1.0"

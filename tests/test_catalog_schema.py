@@ -11,7 +11,7 @@ import jsonschema
 import pytest
 
 from archive.catalog import extensions as ext
-from archive.recipe import parse_recipe
+from archive.sitefile import parse_site_file
 
 ROOT = Path(__file__).resolve().parents[1]
 SCHEMAS = sorted((ROOT / "catalog_schema").rglob("*.json"))
@@ -31,7 +31,7 @@ def test_schema_is_valid_draft_2020_12_with_versioned_id(path: Path) -> None:
 
 
 def test_every_extension_we_emit_has_a_local_rendering() -> None:
-    assert len(SCHEMAS) == len(ext.LOCAL_SCHEMAS) + 1  # + the recipe schema
+    assert len(SCHEMAS) == len(ext.LOCAL_SCHEMAS) + 1  # + the site file schema
     for url, rel in ext.LOCAL_SCHEMAS.items():
         schema = _load(ext.local_schema_path(url))
         if url == ext.SCANSHELF:
@@ -71,12 +71,12 @@ def test_own_schema_rejects_bad_values() -> None:
     assert list(validator.iter_errors(missing))
 
 
-def test_example_recipe_matches_recipe_schema() -> None:
-    schema = _load(ROOT / "catalog_schema" / "recipe.schema.json")
-    data = tomllib.loads((ROOT / "examples" / "recipe.toml").read_text())
+def test_example_site_file_matches_its_schema() -> None:
+    schema = _load(ROOT / "catalog_schema" / "site.schema.json")
+    data = tomllib.loads((ROOT / "examples" / "site.toml").read_text())
     validator = jsonschema.Draft202012Validator(schema)
     assert not list(validator.iter_errors(data))
-    parse_recipe(data, "examples/recipe.toml")  # the lead's loader accepts the same file
+    parse_site_file(data, "examples/site.toml")  # the lead's loader accepts the same file
     for bad in ({"grids": {"cell": 0}}, {"paths": {"station": "^([^/]+)/"}}, {"colour": "red"},
                 {"catalog": {"providers": [{"roles": ["producer"]}]}}):
         assert list(validator.iter_errors(bad)), bad

@@ -154,7 +154,7 @@ def test_duplicate_and_missing_crs(built):
     assert dup.scan_id == truth.file(original).scan_id and dup.path != original
     (bare,) = truth.faults("no_crs")
     las = laspy.read(dest / "source" / bare.path)
-    assert las.header.parse_crs() is None and bare.crs is None and "crs" in bare.needs_recipe
+    assert las.header.parse_crs() is None and bare.crs is None and "crs" in bare.needs_site_file
     assert len(las.points) == bare.recoverable_points
 
 
@@ -187,7 +187,7 @@ def test_ascii_exports_and_bad_rows(built):
             assert nan_rows and malformed
         else:
             assert nan_rows == malformed == [] and good == f.point_count
-        assert "crs" in f.needs_recipe
+        assert "crs" in f.needs_site_file
 
 
 def _angles(las, origin):
@@ -293,21 +293,21 @@ def test_grid_files_open_with_xarray_and_rioxarray(built):
         if g.product == "displacement":
             assert 3.0 < np.nanmax(np.hypot(values[0], values[1])) <= 1.01 * site.FLOW_AT_FRONT
     (bare,) = [g for g in truth.grid_files if g.crs is None]
-    assert bare.needs_recipe == ("crs",) and bare.intended_crs == site.SITE_CRS
+    assert bare.needs_site_file == ("crs",) and bare.intended_crs == site.SITE_CRS
 
 
-def test_recipe_follows_the_example_schema(built):
+def test_site_file_follows_the_example_schema(built):
     dest, truth = built
-    example = tomllib.loads((ROOT / "examples" / "recipe.toml").read_text())
-    recipe = tomllib.loads((dest / truth.recipe).read_text())
-    assert set(recipe) <= set(example)
+    example = tomllib.loads((ROOT / "examples" / "site.toml").read_text())
+    site_file = tomllib.loads((dest / truth.site_file).read_text())
+    assert set(site_file) <= set(example)
     for section in ("site", "paths", "ascii", "attributes", "grids", "catalog"):
-        assert set(recipe[section]) <= set(example[section]), section
-    assert recipe["site"]["crs"] == site.SITE_CRS
-    assert set(recipe["stations"]) == {s.id for s in truth.stations}
-    assert all(set(s) <= {"id", "origin"} for s in recipe["stations"].values())
-    zero_config = [f for f in truth.point_files if not f.needs_recipe]
-    assert len(zero_config) > len(truth.point_files) / 2  # most files need no recipe
+        assert set(site_file[section]) <= set(example[section]), section
+    assert site_file["site"]["crs"] == site.SITE_CRS
+    assert set(site_file["stations"]) == {s.id for s in truth.stations}
+    assert all(set(s) <= {"id", "origin"} for s in site_file["stations"].values())
+    zero_config = [f for f in truth.point_files if not f.needs_site_file]
+    assert len(zero_config) > len(truth.point_files) / 2  # most files need no site file
 
 
 def test_total_points_scales_and_chunks_stay_bounded(monkeypatch):

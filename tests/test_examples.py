@@ -35,7 +35,7 @@ def test_demo_end_to_end_keeps_every_good_point(demo_run):
     shelf = demo_run / "shelf"
     items = [json.loads(p.read_text()) for p in (shelf / "scans/items").rglob("*.json")]
     converted = {i["id"]: i["properties"]["pc:count"] for i in items}
-    # every good file, and the one whose CRS the recipe gives, arrives with all its points, once
+    # every good file, and the one whose CRS the site file gives, arrives with all its points, once
     good = {f.scan_id: f.point_count for f in truth.point_files if f.fault is None or f.fault.kind == "no_crs"}
     assert converted == good
     for path in ("catalog.json", "scans/items.parquet", "index.html", "grids/north.zarr/zarr.json"):
@@ -53,7 +53,7 @@ def test_every_planted_fault_is_reported(demo_run):
 
     survey = {r["relpath"]: r for r in pq.read_table(log).to_pylist()}
     for f in truth.point_files:
-        if f.fault is None or f.fault.kind == "no_crs":  # the recipe supplies the CRS
+        if f.fault is None or f.fault.kind == "no_crs":  # the site file supplies the CRS
             continue
         assert survey[f.path]["status"] in ("damaged", "duplicate", "unusable"), f.path
 

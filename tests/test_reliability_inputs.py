@@ -139,13 +139,13 @@ def test_las_headers_with_random_bytes_give_a_clear_error_or_points(patches) -> 
 @given(lines=st.lists(st.text(alphabet=st.sampled_from(list("0123456789.,;\t -+eEnaif\ufeff\u00a0x#")), max_size=40),
                       min_size=1, max_size=30))
 def test_ascii_with_random_rows_gives_a_clear_error_or_finite_points(lines) -> None:
-    from archive.recipe import load_recipe
+    from archive.sitefile import load_site_file
     from archive.sources import AsciiReader, SourceError
 
     data = ("X,Y,Z\n1.5,2.5,3.5\n" + "\n".join(lines) + "\n").encode()
     relpath = "south/fuzzed rows.csv"
     try:
-        reader = AsciiReader(_Bytes(data), relpath, len(data), load_recipe(None, factory.SITE_CRS))
+        reader = AsciiReader(_Bytes(data), relpath, len(data), load_site_file(None, factory.SITE_CRS))
         tables = list(reader.chunks(1000, salvage=True))
     except SourceError as exc:
         assert relpath in str(exc)
@@ -163,7 +163,7 @@ def test_ascii_with_random_rows_gives_a_clear_error_or_finite_points(lines) -> N
 def test_ascii_decimals_round_trip_exactly(values, places) -> None:
     """Text → DECIMAL keeps the written decimal exactly (reference: Python's decimal module)."""
     from archive.points.coords import units_of
-    from archive.recipe import load_recipe
+    from archive.sitefile import load_site_file
     from archive.sources import AsciiReader
 
     def text(v: int) -> str:
@@ -171,7 +171,7 @@ def test_ascii_decimals_round_trip_exactly(values, places) -> None:
 
     rows = [",".join(text(v) for v in row) for row in values]
     data = ("X,Y,Z\n" + "\n".join(rows) + "\n").encode()
-    reader = AsciiReader(_Bytes(data), "south/exact.csv", len(data), load_recipe(None, factory.SITE_CRS))
+    reader = AsciiReader(_Bytes(data), "south/exact.csv", len(data), load_site_file(None, factory.SITE_CRS))
     table = pa.concat_tables(reader.chunks(1000))
     k = reader.header.axes["x"].places
     for i, axis in enumerate("xyz"):

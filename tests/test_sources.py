@@ -11,7 +11,7 @@ import pyarrow as pa
 import pytest
 
 from archive.points.coords import units_of
-from archive.recipe import Recipe
+from archive.sitefile import SiteFile
 from archive.sources import DamagedSource, SourceError, classify, open_points
 from tests import factory
 
@@ -19,7 +19,7 @@ from tests import factory
 def _reader(path):
     fs = fsspec.filesystem("file")
     head = path.read_bytes()[:4096]
-    return open_points(fs, str(path), path.name, path.stat().st_size, head, Recipe())
+    return open_points(fs, str(path), path.name, path.stat().st_size, head, SiteFile())
 
 
 def _read_all(reader, **kw) -> pa.Table:
@@ -170,5 +170,5 @@ def test_classify():
 
 def test_text_without_xyz_names_the_fix(tmp_path):
     (tmp_path / "odd.csv").write_text("a,b,c\n1,2,3\n4,5,6\n")
-    with pytest.raises(SourceError, match=r"odd.csv: no x, y, z column .* recipe"):
+    with pytest.raises(SourceError, match=r"odd.csv: no x, y, z column .* site file"):
         _reader(tmp_path / "odd.csv")

@@ -61,7 +61,7 @@ def build_catalog(
     """Write the complete catalog for exactly ``records``; Items of other scans are removed.
 
     ``grids`` describes the Zarr cubes (None: read them from the shelf); ``settings`` is the
-    recipe's [catalog] table (license, title, providers); ``memo`` keeps the cubes' object
+    site file's [catalog] table (license, title, providers); ``memo`` keeps the cubes' object
     hashes between runs (see :func:`store_fingerprint`).
     """
     shelf = Shelf(shelf_url, storage_options)

@@ -1,7 +1,7 @@
 """The shelf's root Catalog and its two Collections: scans (one Item each) and grids (cubes).
 
 Extents and summaries are recomputed from all Items every time, so they always cover them.
-License and providers come from the recipe's [catalog] table; when unset they say so plainly
+License and providers come from the site file's [catalog] table; when unset they say so plainly
 instead of inventing values.
 """
 
@@ -24,9 +24,9 @@ from archive.layout import CATALOG, GRIDS_COLLECTION, SCANS_COLLECTION, SCANS_IN
 
 GRIDS_ID = "grids"
 SHELF_ID = "shelf"
-LICENSE_PLACEHOLDER = "License not set: add `license` to the recipe's [catalog] table."
-PROVIDER_PLACEHOLDER = "Provider not set: add [[catalog.providers]] to the recipe"
-TITLE_PLACEHOLDER = "Untitled shelf (set `title` in the recipe's [catalog] table)"
+LICENSE_PLACEHOLDER = "License not set: add `license` to the site file's [catalog] table."
+PROVIDER_PLACEHOLDER = "Provider not set: add [[catalog.providers]] to the site file"
+TITLE_PLACEHOLDER = "Untitled shelf (set `title` in the site file's [catalog] table)"
 
 
 @dataclass(frozen=True)

@@ -7,27 +7,27 @@ import sys
 import click
 
 from archive.catalog import rebuild_catalog, verify_shelf
-from archive.cli.common import parse_storage_options, recipe_option, storage_option
-from archive.recipe import load_recipe
+from archive.cli.common import parse_storage_options, site_option, storage_option
+from archive.sitefile import load_site_file
 
 
 @click.command("catalog")
 @click.argument("shelf", type=click.Path(exists=True, file_okay=False))
-@recipe_option
-def catalog_command(shelf: str, recipe: str | None) -> None:
+@site_option
+def catalog_command(shelf: str, site_file: str | None) -> None:
     """Rebuild the STAC catalog of a local SHELF from its ledger.
 
     Writes every Item, both Collections, the search index scans/items.parquet and, last,
     catalog.json. Grid cubes are described from the Zarr stores on the shelf. License, title
-    and providers come from the recipe's [catalog] table when --recipe is given, else the
+    and providers come from the site file's [catalog] table when --site is given, else the
     ones already in the catalog are kept.
 
     \b
     Example:
-      scanshelf catalog ./site-shelf --recipe site.toml
+      scanshelf catalog ./site-shelf --site site.toml
       scanshelf verify ./site-shelf
     """
-    settings = load_recipe(recipe).catalog if recipe else None
+    settings = load_site_file(site_file).catalog if site_file else None
     result = rebuild_catalog(shelf, settings=settings)
     for warning in result.warnings:
         click.echo(f"warning: {warning}", err=True)

@@ -26,7 +26,7 @@ def demo(dest, seed, points, total_points, weeks, stations, no_faults, workers, 
 
     DEST/source/ gets LAS 1.2/1.4, LAZ and ASCII scans from two fixed scanners, grid
     products and planted faults; DEST/demo-truth.json says what every file holds and
-    DEST/recipe.toml tells a migration what the files cannot.
+    DEST/site.toml tells a migration what the files cannot.
 
     \b
     Examples:
@@ -50,4 +50,4 @@ def demo(dest, seed, points, total_points, weeks, stations, no_faults, workers, 
         f"{t['grid_files']} grid files, {t['other_files']} other files, {t['bytes'] / 1e6:.1f} MB "
         f"in {took:.1f} s to {dest}/source"
     )
-    click.echo(f"answer key: {dest}/demo-truth.json" + (f"; recipe: {dest}/{truth.recipe}" if truth.recipe else ""))
+    click.echo(f"answer key: {dest}/demo-truth.json" + (f"; site file: {dest}/{truth.site_file}" if truth.site_file else ""))

@@ -9,20 +9,20 @@ import sys
 import click
 
 from archive.cli.common import (
-    crs_option, json_option, parse_storage_options, quiet_option, recipe_option, storage_option,
+    crs_option, json_option, parse_storage_options, quiet_option, site_option, storage_option,
 )
 
 
 @click.command("survey")
 @click.argument("source")
-@recipe_option
+@site_option
 @crs_option
 @click.option("-o", "--output", default="survey.parquet", show_default=True, help="Where to write the survey table (Parquet).")
 @click.option("--quick", is_flag=True, help="Read headers only (no point pass): faster, finds less.")
 @storage_option
 @quiet_option
 @json_option
-def survey_command(source, recipe, crs, output, quick, storage_options, quiet, as_json) -> None:
+def survey_command(source, site_file, crs, output, quick, storage_options, quiet, as_json) -> None:
     """Inventory a SOURCE archive: every file, its station, time, points, CRS and problems.
 
     SOURCE is a folder or any fsspec URL (s3://bucket/archive, ...). The whole walk always
@@ -34,7 +34,7 @@ def survey_command(source, recipe, crs, output, quick, storage_options, quiet, a
     """
     from archive.survey import survey
 
-    result = survey(source, recipe, crs, storage_options=parse_storage_options(storage_options),
+    result = survey(source, site_file, crs, storage_options=parse_storage_options(storage_options),
                     deep=not quick, progress=not (quiet or as_json))
     result.write(output)
     if as_json:
@@ -49,10 +49,10 @@ def survey_command(source, recipe, crs, output, quick, storage_options, quiet, a
 @click.command("migrate")
 @click.argument("source")
 @click.argument("shelf", type=click.Path(file_okay=False))
-@recipe_option
+@site_option
 @crs_option
 @click.option("--salvage", is_flag=True, help="Convert the readable points of damaged files and mark those scans partial.")
-@click.option("--cell", type=float, help="Grid cell size in metres for the elevation cubes (default: recipe, else 1).")
+@click.option("--cell", type=float, help="Grid cell size in metres for the elevation cubes (default: the site file, else 1).")
 @click.option("--no-previews", is_flag=True, help="Do not render a preview PNG per scan.")
 @click.option("--workers", type=click.IntRange(1), help="Run on a local dask cluster with this many worker processes.")
 @click.option("--scheduler", metavar="ADDRESS", help="Run on an existing dask scheduler, e.g. tcp://10.0.0.5:8786.")
@@ -61,7 +61,7 @@ def survey_command(source, recipe, crs, output, quick, storage_options, quiet, a
 @storage_option
 @quiet_option
 @json_option
-def migrate_command(source, shelf, recipe, crs, salvage, cell, no_previews, workers, scheduler, memory_per_worker,
+def migrate_command(source, shelf, site_file, crs, salvage, cell, no_previews, workers, scheduler, memory_per_worker,
                     storage_options, quiet, as_json) -> None:
     """Convert every scan in SOURCE into the local SHELF folder.
 
@@ -75,7 +75,7 @@ def migrate_command(source, shelf, recipe, crs, salvage, cell, no_previews, work
 
     \b
     Examples:
-      scanshelf migrate /mnt/labserver/tls ./shelf --recipe site.toml
+      scanshelf migrate /mnt/labserver/tls ./shelf --site site.toml
       scanshelf migrate ./demo/source ./shelf --salvage
       scanshelf migrate /mnt/labserver/tls /scratch/shelf --workers 2 --memory-per-worker 2GiB
       scanshelf migrate s3://lab-archive/tls /scratch/shelf --scheduler tcp://10.0.0.5:8786
@@ -84,7 +84,7 @@ def migrate_command(source, shelf, recipe, crs, salvage, cell, no_previews, work
 
     from archive.migrate import migrate
 
-    result = migrate(source, shelf, recipe, crs, salvage=salvage, cell=cell,
+    result = migrate(source, shelf, site_file, crs, salvage=salvage, cell=cell,
                      storage_options=parse_storage_options(storage_options), progress=not (quiet or as_json),
                      previews=not no_previews, workers=workers, scheduler=scheduler,
                      memory_per_worker=parse_bytes(memory_per_worker))

@@ -6,7 +6,7 @@ import json
 
 import click
 
-from archive.cli.common import crs_option, parse_storage_options, recipe_option
+from archive.cli.common import crs_option, parse_storage_options, site_option
 
 
 @click.command("report")
@@ -49,7 +49,7 @@ def report_command(shelf: str, output: str, storage_option: tuple[str, ...], gap
 @click.option("--publish", "publish_to", metavar="DEST", help="Publish the shelf to DEST after every round.")
 @click.option("--every", default="10m", show_default=True, help="Time between round starts: 30s, 10m, 1h, 1h30m.")
 @click.option("--rounds", type=click.IntRange(min=1), help="Stop after this many rounds (default: run until Ctrl-C).")
-@recipe_option
+@site_option
 @crs_option
 @click.option("--salvage", is_flag=True, help="Convert the readable points of damaged files.")
 @click.option("--no-report", is_flag=True, help="Do not keep the shelf's index.html health page up to date.")
@@ -60,7 +60,7 @@ def report_command(shelf: str, output: str, storage_option: tuple[str, ...], gap
 @click.option("-q", "--quiet", is_flag=True, help="Print only rounds with new scans, failures or errors.")
 @click.option("--json", "as_json", is_flag=True, help="Print one JSON object per round (JSON Lines).")
 def watch_command(source: str, shelf: str, publish_to: str | None, every: str, rounds: int | None,
-                  recipe: str | None, crs: str | None, salvage: bool, no_report: bool,
+                  site_file: str | None, crs: str | None, salvage: bool, no_report: bool,
                   storage_option: tuple[str, ...], publish_option: tuple[str, ...], quiet: bool,
                   as_json: bool) -> None:
     """Keep SHELF up to date with SOURCE: migrate new files on a schedule, and publish.
@@ -90,7 +90,7 @@ def watch_command(source: str, shelf: str, publish_to: str | None, every: str, r
         elif not quiet or one.new_scans or one.new_failed or one.errors:
             click.echo(one.line())
 
-    result = watch(source, shelf, interval, publish_to, rounds, recipe, crs, salvage=salvage,
+    result = watch(source, shelf, interval, publish_to, rounds, site_file, crs, salvage=salvage,
                    storage_options=parse_storage_options(storage_option),
                    publish_options=parse_storage_options(publish_option), report=not no_report, on_round=show)
     if result.interrupted and not as_json:

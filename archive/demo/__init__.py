@@ -2,7 +2,7 @@
 
 ``make_demo(dest)`` writes a messy legacy archive under ``dest/source/``, what each file
 should yield to ``dest/demo-truth.json`` (outside the source tree, so a survey cannot see it)
-and ``dest/recipe.toml`` when some files need one. ``DemoTruth.load`` reads the key back.
+and ``dest/site.toml`` when some files need one. ``DemoTruth.load`` reads the key back.
 
 The site, Quillmere Glacier, is fictional: a tidewater glacier front in UTM zone 33N watched by
 two fixed scanners. Its surface flows east by metres a day, thins a few centimetres a day
@@ -32,7 +32,7 @@ Planted faults (``faults=True``): a truncated LAS 1.4 file, a LAS 1.2 header cla
 points than stored, a CSV export with NaN and malformed rows, the duplicate above and a LAS
 1.4 file without any CRS record. Each is described, with the points a salvage can keep, in
 the truth file. Files whose CRS or time the zero-config path cannot know list it in
-``needs_recipe``; the recipe supplies them.
+``needs_site_file``; the site file supplies them.
 """
 
 from archive.demo.make import make_demo

@@ -76,7 +76,7 @@ def _truth(path: str, fmt: str, station: str, product: str, crs: str | None, tra
         "nodata": NODATA,
         "dtype": "float32",
         **times,
-        "needs_recipe": [] if crs else ["crs"],
+        "needs_site_file": [] if crs else ["crs"],
         "sidecars": [],
         **more,
     }

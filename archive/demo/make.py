@@ -2,7 +2,7 @@
 
 ``make_demo`` plans every scan (station, time, format, fault) from the seed alone, writes the
 point files (in parallel processes when asked; each file depends only on its own plan), then
-the grid products, the non-data files, the recipe and ``demo-truth.json``.
+the grid products, the non-data files, the site file and ``demo-truth.json``.
 """
 
 from __future__ import annotations
@@ -155,7 +155,7 @@ def write_scan(source: str, plan: ScanPlan) -> dict:
         elif plan.fault == "count_mismatch":
             fault = faults.overstate_count(path, extra=max(1, plan.n_points // 10))
         elif plan.fault == "no_crs":
-            fault = {"kind": "no_crs", "expect": "no CRS record in the file; the recipe's [site] crs "
+            fault = {"kind": "no_crs", "expect": "no CRS record in the file; the site file's [site] crs "
                      "gives it", "recoverable_points": plan.n_points}
     las = isinstance(plan.spec, LasSpec)
     adjusted = las and plan.spec.adjusted_time
@@ -199,7 +199,7 @@ def write_scan(source: str, plan: ScanPlan) -> dict:
         "bbox": stats.bbox,
         "tide_m": round(float(site.tide(plan.time)), 4),
         "fault": fault,
-        "needs_recipe": needs,
+        "needs_site_file": needs,
         "sha256": sha256(path),
         "size": path.stat().st_size,
         "_first_gps_ok": bool(stats.first_gps == first_gps or plan.fault == "bad_rows"),
@@ -224,7 +224,7 @@ products/ folders hold DEMs and velocity grids made with old tools; one grid los
 Invented site and data for software testing; not for hazard assessment of any real place.
 """
 
-RECIPE = """# Recipe for the scanshelf demo source (fictional site). The LAS/LAZ files need none of it;
+SITE_FILE = """# Site file for the scanshelf demo source (fictional site). The LAS/LAZ files need none of it;
 # it gives the CRS of the ASCII exports, the LAS file without a CRS record and the grid that
 # lost its CRS, and accepts both stamp styles (YYYYMMDD_HHMMSS and YYYYMMDDTHHMMSS).
 version = 1
@@ -270,12 +270,12 @@ url = "https://example.org"
 """
 
 
-def _recipe(stations: list[scanner.Station]) -> str:
+def _site_file(stations: list[scanner.Station]) -> str:
     blocks = "".join(
         f'\n[stations.{s.id}]\nid = "{s.id}"\norigin = [{s.origin[0]}, {s.origin[1]}, {s.origin[2]}]\n'
         for s in stations
     )
-    return RECIPE.format(crs=site.SITE_CRS, stations=blocks)
+    return SITE_FILE.format(crs=site.SITE_CRS, stations=blocks)
 
 
 def _thumbs(seed: int) -> bytes:
@@ -298,7 +298,7 @@ def make_demo(
     workers: int | None = None,
     overwrite: bool = False,
 ) -> DemoTruth:
-    """Write ``dest/source/`` (a messy legacy archive), ``dest/recipe.toml`` and ``dest/demo-truth.json``.
+    """Write ``dest/source/`` (a messy legacy archive), ``dest/site.toml`` and ``dest/demo-truth.json``.
 
     Same seed and parameters give byte-identical files. ``total_points`` (split evenly over
     all scans) overrides ``points_per_scan`` for benchmark-sized archives; files are written in
@@ -313,7 +313,7 @@ def make_demo(
         if not overwrite:
             raise FileExistsError(f"{source} already holds files; pass overwrite=True (--overwrite) to replace them")
         shutil.rmtree(source)
-        for stale in ("recipe.toml", "demo-truth.json"):
+        for stale in ("site.toml", "demo-truth.json"):
             (dest / stale).unlink(missing_ok=True)
     source.mkdir(parents=True, exist_ok=True)
     plans = plan_scans(seed, stations, weeks, points_per_scan, total_points, faults, start, switch)
@@ -340,12 +340,12 @@ def make_demo(
         with atomic(source / rel) as tmp:
             tmp.write_bytes(data)
         others.append({"path": rel, "note": note, "sha256": sha256(source / rel), "size": len(data)})
-    needs_recipe = any(r["needs_recipe"] for r in records) or any(g["needs_recipe"] for g in grid_records)
-    recipe = None
-    if needs_recipe:
-        with atomic(dest / "recipe.toml") as tmp:
-            tmp.write_text(_recipe(list(used)))
-        recipe = "recipe.toml"
+    needs_site_file = any(r["needs_site_file"] for r in records) or any(g["needs_site_file"] for g in grid_records)
+    site_file = None
+    if needs_site_file:
+        with atomic(dest / "site.toml") as tmp:
+            tmp.write_text(_site_file(list(used)))
+        site_file = "site.toml"
     records.sort(key=lambda r: r["path"])
     unique = [r for r in records if not (r["fault"] and r["fault"]["kind"] == "duplicate")]
     truth = DemoTruth.from_dict({
@@ -358,7 +358,7 @@ def make_demo(
              "azimuth": list(s.azimuth), "elevation": list(s.elevation), "scan_duration_s": s.duration}
             for s in used
         ],
-        "recipe": recipe,
+        "site_file": site_file,
         "point_files": records,
         "grid_files": sorted(grid_records, key=lambda g: g["path"]),
         "other_files": others,

@@ -53,7 +53,7 @@ class PointFile:
     bbox: tuple[float, ...]  # xmin ymin zmin xmax ymax zmax of the recoverable points
     tide_m: float  # modelled sea level at scan_time (m)
     fault: Fault | None
-    needs_recipe: tuple[str, ...]  # what zero-config cannot know: "crs", "time"
+    needs_site_file: tuple[str, ...]  # what zero-config cannot know: "crs", "time"
     sha256: str
     size: int
 
@@ -73,7 +73,7 @@ class GridFile:
     units: dict
     nodata: float
     dtype: str
-    needs_recipe: tuple[str, ...]
+    needs_site_file: tuple[str, ...]
     sidecars: tuple[str, ...]
     sha256: str
     size: int
@@ -81,7 +81,7 @@ class GridFile:
     start: str | None = None  # interval products
     end: str | None = None
     crs_source: str | None = None
-    intended_crs: str | None = None  # the CRS a recipe should give a file that lacks one
+    intended_crs: str | None = None  # the CRS a site file should give a file that lacks one
 
 
 @dataclass(frozen=True)
@@ -113,7 +113,7 @@ class DemoTruth:
     params: dict
     site: dict  # name, crs, origin, model constants (tide, flow, thinning)
     stations: tuple[StationInfo, ...]
-    recipe: str | None  # path of the recipe relative to the demo folder, if one is needed
+    site_file: str | None  # path of the site file relative to the demo folder, if one is needed
     point_files: tuple[PointFile, ...]
     grid_files: tuple[GridFile, ...]
     other_files: tuple[OtherFile, ...]

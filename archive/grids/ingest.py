@@ -3,7 +3,7 @@
 Values are kept as stored (raw dtype, nodata as the Zarr fill value, scale/offset attributes
 untouched), with CF attributes and a ``spatial_ref`` grid mapping (CRS WKT and GDAL
 GeoTransform) so xarray, rioxarray and GDAL read them back on the same grid. Nothing is
-resampled unless the caller passes ``resample_to`` (the recipe asks for it).
+resampled unless the caller passes ``resample_to`` (the site file asks for it).
 
 Files stamped with a time in their name become one time step of ``grids/<station>-<product>.zarr``
 (later files of the same product and grid append; the same file again replaces its step).
@@ -139,7 +139,7 @@ def ingest_grid(
 ) -> IngestedGrid:
     """Copy one legacy grid file into ``grids/<station>-<product>.zarr`` of the shelf.
 
-    ``crs`` is used only when the file declares none (recipe ``[[grids.files]] crs``);
+    ``crs`` is used only when the file declares none (site_file ``[[grids.files]] crs``);
     ``time`` (UTC-aware) defaults to a stamp in the file name read as UTC.
     """
     check_station(station)
@@ -155,7 +155,7 @@ def ingest_grid(
     file_crs = ds.rio.crs
     if file_crs is None and crs is None:
         raise GridCrsMissing(
-            f"{path_or_url}: the grid declares no CRS; set `crs` in the recipe's [[grids.files]] "
+            f"{path_or_url}: the grid declares no CRS; set `crs` in the site file's [[grids.files]] "
             f"entry whose pattern matches this file (or pass --crs EPSG:xxxx)"
         )
     target_crs = CRS.from_user_input(file_crs.to_wkt() if file_crs is not None else crs)
@@ -200,7 +200,7 @@ def _write(ds: xr.Dataset, url: str, source: str, storage_options: dict | None) 
         return
     raise ValueError(
         f"{url} already holds {old.attrs.get('scanshelf:source')!r} on {'another' if not same_grid else 'the same'} grid; "
-        f"{source} cannot join it: give it its own product name in the recipe ([[grids.files]] product = ...)"
+        f"{source} cannot join it: give it its own product name in the site file ([[grids.files]] product = ...)"
         + ("" if same_grid else " or ask for resampling onto the station grid")
     )
 

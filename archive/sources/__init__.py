@@ -47,12 +47,12 @@ def _looks_like_point_rows(head: bytes) -> bool:
     return any(len(re.findall(r"[-+]?\d+(?:\.\d+)?(?:[eE][-+]?\d+)?", ln)) >= 3 for ln in lines[:-1] or lines)
 
 
-def open_points(fs, path: str, relpath: str, size: int, head: bytes, recipe) -> PointReader:
+def open_points(fs, path: str, relpath: str, size: int, head: bytes, site_file) -> PointReader:
     """The reader for one point file; ``fs``/``path`` locate it, ``relpath`` names it in messages."""
 
     def opener():
         return fs.open(path, "rb")
 
     if looks_like_las(head):
-        return LasReader(opener, relpath, size, renames=recipe.rename)
-    return AsciiReader(opener, relpath, size, recipe)
+        return LasReader(opener, relpath, size, renames=site_file.rename)
+    return AsciiReader(opener, relpath, size, site_file)

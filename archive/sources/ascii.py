@@ -42,11 +42,11 @@ def normalise_name(name: str) -> str:
 class AsciiReader:
     """One delimited text export."""
 
-    def __init__(self, opener, relpath: str, size: int, recipe) -> None:
+    def __init__(self, opener, relpath: str, size: int, site_file) -> None:
         self._opener = opener
         self.relpath = relpath
         self.size = size
-        self._recipe = recipe
+        self._site_file = site_file
         self.tally = ReadTally()
         self.header = self._sniff()
 
@@ -61,7 +61,7 @@ class AsciiReader:
         lines = text.splitlines()
         if len(raw) == SAMPLE_BYTES and lines:
             lines = lines[:-1]  # the last sampled line may be cut
-        comment = self._recipe.ascii_comment
+        comment = self._site_file.ascii_comment
         self._skip = 0
         while self._skip < len(lines) and (not lines[self._skip].strip() or (comment and lines[self._skip].lstrip().startswith(comment))):
             self._skip += 1
@@ -72,22 +72,22 @@ class AsciiReader:
         first = self._split(body[0])
         has_header = not all(re.match(_NUMBER, tok) for tok in first)
         if has_header:
-            names = [normalise_name(self._recipe.rename(tok.strip())) for tok in first]
+            names = [normalise_name(self._site_file.rename(tok.strip())) for tok in first]
             self._skip += 1
             sample = body[1:2000]
-        elif self._recipe.ascii_columns:
-            names = list(self._recipe.ascii_columns)
+        elif self._site_file.ascii_columns:
+            names = list(self._site_file.ascii_columns)
             sample = body[:2000]
         else:
             names = ["x", "y", "z"] + [f"column_{i}" for i in range(4, len(first) + 1)]
             sample = body[:2000]
         if len(names) != len(set(names)):
-            raise SourceError(f"{self.relpath}: repeated column names {names}; rename them in the recipe [attributes]")
+            raise SourceError(f"{self.relpath}: repeated column names {names}; rename them in the site file [attributes]")
         missing = {"x", "y", "z"} - set(names)
         if missing:
             raise SourceError(
                 f"{self.relpath}: no {', '.join(sorted(missing))} column among {names}; "
-                "name the columns in the recipe ([ascii] columns or [attributes] rename)"
+                "name the columns in the site file ([ascii] columns or [attributes] rename)"
             )
         self._names = names
         rows = [self._split(ln) for ln in sample]
@@ -99,7 +99,7 @@ class AsciiReader:
             for i, n in enumerate(names):
                 if n in ("x", "y", "z") and "." in r[i] and "e" not in r[i].lower():
                     places = max(places, len(r[i].strip().split(".")[1]))
-        places = getattr(self._recipe, "ascii_places", None) or min(places, MAX_PLACES)
+        places = getattr(self._site_file, "ascii_places", None) or min(places, MAX_PLACES)
         axes = {a: AxisEncoding.for_text(places) for a in "xyz"}
         return SourceHeader(
             format="ascii",
@@ -110,7 +110,7 @@ class AsciiReader:
         )
 
     def _pick_delimiter(self, lines: list[str]) -> str:
-        wanted = self._recipe.ascii_delimiter
+        wanted = self._site_file.ascii_delimiter
         if wanted != "auto":
             return wanted
         best, best_score = " ", -1
@@ -160,7 +160,7 @@ class AsciiReader:
                 except StopIteration:
                     break
                 except pa.ArrowInvalid as exc:
-                    raise SourceError(f"{self.relpath}: text parsing failed ({exc}); check the delimiter in the recipe") from None
+                    raise SourceError(f"{self.relpath}: text parsing failed ({exc}); check the delimiter in the site file") from None
                 table, bad = self._convert(batch)
                 bad_rows += bad
                 if bad_rows and not salvage:
@@ -218,7 +218,7 @@ class AsciiReader:
                 if inexact.any():
                     raise SourceError(
                         f"{self.relpath}: column {name} has values with more than {enc.places} decimals "
-                        "(the first rows had fewer); set [ascii] places in the recipe"
+                        "(the first rows had fewer); set [ascii] places in the site file"
                     )
             else:
                 columns[name] = pc.cast(text, pa.int64() if name in self._integer else pa.float64())

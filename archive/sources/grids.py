@@ -39,7 +39,7 @@ class GridProbe:
     path: str
     format: str  # "geotiff", "netcdf", "aaigrid"
     crs_wkt: str | None
-    crs_source: str | None  # "file", "recipe" (rule or site CRS) or None
+    crs_source: str | None  # "file", "site_file" (rule or site CRS) or None
     shape: tuple[int, int]  # (rows, cols)
     transform: tuple[float, float, float, float, float, float]  # GDAL order: x0, dx, rx, y0, ry, dy
     bounds: tuple[float, float, float, float]  # xmin, ymin, xmax, ymax
@@ -136,13 +136,13 @@ def open_grid(local_path: str, fmt: str) -> xr.Dataset:
     return ds
 
 
-def probe_grid(fs: fsspec.AbstractFileSystem, path: str, relpath: str | None = None, recipe=None) -> GridProbe:
+def probe_grid(fs: fsspec.AbstractFileSystem, path: str, relpath: str | None = None, site_file=None) -> GridProbe:
     """Format, CRS (or None), shape, transform, bounds, product guess and name stamp of a grid.
 
-    ``relpath`` names the file in messages and is matched against the recipe's
+    ``relpath`` names the file in messages and is matched against the site file's
     ``[[grids.files]]`` rules; a rule's (else the site's) CRS fills in a missing CRS
-    (``crs_source = "recipe"``) and its product overrides the guess. The name stamp is read in
-    the recipe's time zone and returned in UTC.
+    (``crs_source = "site_file"``) and its product overrides the guess. The name stamp is read in
+    the site file's time zone and returned in UTC.
     """
     name = relpath or path
     fmt = grid_format(path)
@@ -151,18 +151,18 @@ def probe_grid(fs: fsspec.AbstractFileSystem, path: str, relpath: str | None = N
             ds = open_grid(local, fmt)
         except Exception as e:  # rasterio/h5netcdf errors carry no file name
             raise ValueError(f"{name}: cannot read as {fmt} grid ({e})") from e
-    rule = recipe.grid_rule(name) if recipe is not None else None
+    rule = site_file.grid_rule(name) if site_file is not None else None
     crs = ds.rio.crs
     crs_wkt, crs_source = (crs.to_wkt(), "file") if crs is not None else (None, None)
-    fallback = (rule.crs if rule else None) or (getattr(recipe, "crs", None) if recipe is not None else None)
+    fallback = (rule.crs if rule else None) or (getattr(site_file, "crs", None) if site_file is not None else None)
     if crs_wkt is None and fallback:
         from pyproj import CRS
 
-        crs_wkt, crs_source = CRS.from_user_input(fallback).to_wkt(), "recipe"
+        crs_wkt, crs_source = CRS.from_user_input(fallback).to_wkt(), "site_file"
     variables = tuple(str(v) for v in ds.data_vars)
     stamp = time_from_name(name)
     if stamp is not None:
-        zone = recipe.zone if recipe is not None else timezone.utc
+        zone = site_file.zone if site_file is not None else timezone.utc
         stamp = stamp.replace(tzinfo=zone).astimezone(timezone.utc)
     return GridProbe(
         path=name,

@@ -1,7 +1,7 @@
-"""The recipe: an optional TOML file saying how to read one source archive.
+"""The site file: an optional TOML file saying how to read one source archive.
 
-Every field has a default that fits the common case, so most sources need no recipe. Errors
-name the recipe file and the field, because a typo here should never surface as a wrong scan
+Every field has a default that fits the common case, so most sources need no site file. Errors
+name the site file file and the field, because a typo here should never surface as a wrong scan
 time three days into a migration.
 """
 
@@ -18,8 +18,8 @@ DEFAULT_STATION = r"^(?P<station>[^/]+)/"
 DEFAULT_TIME = r"(?P<time>\d{8}[_T]\d{6})"
 
 
-class RecipeError(ValueError):
-    """A recipe that cannot be used; the message names the file and the field."""
+class SiteFileError(ValueError):
+    """A site file that cannot be used; the message names the file and the field."""
 
 
 @dataclass(frozen=True)
@@ -38,7 +38,7 @@ class GridFileRule:
 
 
 @dataclass(frozen=True)
-class Recipe:
+class SiteFile:
     """How to read a source. Frozen so it can travel to dask workers unchanged."""
 
     crs: str | None = None
@@ -80,33 +80,33 @@ class Recipe:
     def grid_rule(self, relpath: str) -> GridFileRule | None:
         return next((r for r in self.grid_files if re.search(r.pattern, relpath)), None)
 
-    def with_crs(self, crs: str | None) -> "Recipe":
-        """A command-line --crs overrides the recipe's site CRS."""
+    def with_crs(self, crs: str | None) -> "SiteFile":
+        """A command-line --crs overrides the site file's site CRS."""
         return self if crs is None else replace(self, crs=crs)
 
 
-def load_recipe(path: str | Path | None, crs: str | None = None) -> Recipe:
-    """Read a recipe file (or the defaults when ``path`` is None); ``crs`` overrides [site].crs."""
+def load_site_file(path: str | Path | None, crs: str | None = None) -> SiteFile:
+    """Read a site file (or the defaults when ``path`` is None); ``crs`` overrides [site].crs."""
     if path is None:
-        return Recipe().with_crs(crs)
+        return SiteFile().with_crs(crs)
     path = Path(path)
     try:
         data = tomllib.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:
-        raise RecipeError(f"recipe {path} does not exist; check the --recipe path") from None
+        raise SiteFileError(f"site file {path} does not exist; check the --site path") from None
     except tomllib.TOMLDecodeError as exc:
-        raise RecipeError(f"recipe {path} is not valid TOML: {exc}") from None
-    return parse_recipe(data, str(path)).with_crs(crs)
+        raise SiteFileError(f"site file {path} is not valid TOML: {exc}") from None
+    return parse_site_file(data, str(path)).with_crs(crs)
 
 
-def parse_recipe(data: dict[str, Any], where: str = "<recipe>") -> Recipe:
-    def fail(field_name: str, why: str) -> RecipeError:
-        return RecipeError(f"recipe {where}: [{field_name}] {why}")
+def parse_site_file(data: dict[str, Any], where: str = "<site_file>") -> SiteFile:
+    def fail(field_name: str, why: str) -> SiteFileError:
+        return SiteFileError(f"site file {where}: [{field_name}] {why}")
 
     known = {"version", "site", "paths", "stations", "ascii", "attributes", "grids", "catalog"}
     unknown = set(data) - known
     if unknown:
-        raise fail(", ".join(sorted(unknown)), f"is not a recipe section; known: {', '.join(sorted(known))}")
+        raise fail(", ".join(sorted(unknown)), f"is not a site file section; known: {', '.join(sorted(known))}")
     if data.get("version", 1) != 1:
         raise fail("version", f"is {data['version']!r}; this scanshelf reads version 1")
 
@@ -157,7 +157,7 @@ def parse_recipe(data: dict[str, Any], where: str = "<recipe>") -> Recipe:
     if cell <= 0:
         raise fail("grids.cell", "must be a positive number of metres")
 
-    return Recipe(
+    return SiteFile(
         crs=site.get("crs"),
         timezone=timezone,
         station_pattern=station_pattern,
