@@ -271,7 +271,7 @@ def test_thinning_shows_between_first_and_last_dem(built):
 
 def test_grid_files_open_with_xarray_and_rioxarray(built):
     dest, truth = built
-    assert {g.format for g in truth.grid_files} == {"geotiff", "netcdf", "esri_ascii"}
+    assert {g.format for g in truth.grid_files} == {"geotiff", "netcdf", "aaigrid"}
     assert {g.crs for g in truth.grid_files} == {"EPSG:32633", "EPSG:32632", None}
     for g in truth.grid_files:
         path = dest / "source" / g.path

@@ -117,6 +117,7 @@ def test_demo_products_of_each_kind(tmp_path):
         path = str(tmp_path / "src" / rec["path"])
         probe = probe_grid(fs, path, rec["path"])
         assert probe.shape == tuple(rec["shape"]), rec["path"]
+        assert probe.format == rec["format"], rec["path"]  # one format, one id: the survey's and the answer key's
         assert (probe.crs_wkt is None) == (rec["crs"] is None), rec["path"]
         crs = None if rec["crs"] else rec["intended_crs"]
         got = ingest_grid(path, str(tmp_path / "shelf"), rec["station"], product=rec["product"], crs=crs)
@@ -127,7 +128,7 @@ def test_demo_products_of_each_kind(tmp_path):
         for name, unit in rec["units"].items():
             assert ds[name].attrs.get("units") == unit, (rec["path"], name)
         seen.add((rec["format"], rec["product"]))
-    assert {f for f, _ in seen} == {"geotiff", "netcdf", "esri_ascii"}
+    assert {f for f, _ in seen} == {"geotiff", "netcdf", "aaigrid"}
     # the north DEMs (GeoTIFF then NetCDF, same grid, stamped names) form one time series
     assert xr.open_zarr(tmp_path / "shelf" / "grids" / "north-dem.zarr").sizes["time"] == 2
     assert {p for _, p in seen} >= {"dem", "displacement", "strain_rate"}

@@ -113,7 +113,7 @@ def write_netcdf(path: Path, variables: dict[str, np.ndarray], transform: Affine
         ds.to_netcdf(tmp, engine="h5netcdf", encoding=encoding)
 
 
-def write_esri_ascii(path: Path, data: np.ndarray, transform: Affine, crs: str) -> Path:
+def write_ascii_grid(path: Path, data: np.ndarray, transform: Affine, crs: str) -> Path:
     """ESRI ASCII grid with its .prj; both are renamed into place together."""
     prj = path.with_suffix(".prj")
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -163,8 +163,8 @@ def write_products(source: Path, times: dict[str, list[float]]) -> list[dict]:
         ts = times["south"]
         tm = ts[len(ts) // 2]
         rel = f"south/products/dem {datetime.fromtimestamp(tm, timezone.utc):%Y%m%d}.asc"
-        prj = write_esri_ascii(source / rel, dem(transform, rows, cols, tm), transform, site.SITE_CRS)
-        rec = _truth(rel, "esri_ascii", "south", "dem", site.SITE_CRS, transform, (rows, cols),
+        prj = write_ascii_grid(source / rel, dem(transform, rows, cols, tm), transform, site.SITE_CRS)
+        rec = _truth(rel, "aaigrid", "south", "dem", site.SITE_CRS, transform, (rows, cols),
                      ["elevation"], {"elevation": "m"}, {"time": _iso(tm)}, crs_source=".prj")
         rec["sidecars"] = [prj.relative_to(source).as_posix()]
         out.append(rec)

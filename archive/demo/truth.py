@@ -63,7 +63,7 @@ class GridFile:
     """One legacy grid file under source/ (its sidecars listed with it)."""
 
     path: str
-    format: str  # "geotiff" | "netcdf" | "esri_ascii"
+    format: str  # "geotiff" | "netcdf" | "aaigrid"
     station: str
     product: str  # "dem" | "displacement" | "strain_rate"
     crs: str | None
