@@ -1,7 +1,7 @@
 """The site file: an optional TOML file saying how to read one source archive.
 
 Every field has a default that fits the common case, so most sources need no site file. Errors
-name the site file file and the field, because a typo here should never surface as a wrong scan
+name the site file and the field, because a typo here should never surface as a wrong scan
 time three days into a migration.
 """
 

@@ -226,7 +226,8 @@ def inspect_file(fs, path: str, relpath: str, size: int, site_file: SiteFile, *,
             report.problems.append("not a point or grid file; ignored")
         return report
     try:
-        report.station = station_of(relpath, site_file)
+        rule = site_file.grid_rule(relpath) if report.kind == "grid" else None  # a [[grids.files]] station wins
+        report.station = check_station(rule.station) if rule and rule.station else station_of(relpath, site_file)
     except (SourceError, ValueError) as exc:
         report.status = "unusable"
         report.problems.append(_reason(exc, relpath))

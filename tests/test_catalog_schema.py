@@ -82,6 +82,42 @@ def test_example_site_file_matches_its_schema() -> None:
         assert list(validator.iter_errors(bad)), bad
 
 
+def _fields_missing(schema: dict, value: object, where: str, defs: dict) -> list[str]:
+    """Schema properties that the example never shows, walking objects, maps and arrays together."""
+    if "$ref" in schema:
+        schema = defs[schema["$ref"].removeprefix("#/$defs/")]
+    missing = []
+    if isinstance(value, dict):
+        for name, sub in schema.get("properties", {}).items():
+            if name not in value:
+                missing.append(f"{where}.{name}")
+            else:
+                missing += _fields_missing(sub, value[name], f"{where}.{name}", defs)
+        extra = schema.get("additionalProperties")
+        if isinstance(extra, dict):  # a map such as [stations] or grids.extent: one entry must show it all
+            if not value:
+                missing.append(f"{where}.<entry>")
+            for name in value:
+                missing += _fields_missing(extra, value[name], f"{where}.{name}", defs)
+    elif isinstance(value, list) and isinstance(schema.get("items"), dict):
+        if not value:
+            missing.append(f"{where}[]")
+        shown = [set(_fields_missing(schema["items"], item, f"{where}[]", defs)) for item in value]
+        missing += sorted(set.intersection(*shown)) if shown else []
+    return missing
+
+
+def test_example_site_file_shows_every_schema_field() -> None:
+    # reference: the schema itself, walked property by property; the example must validate (jsonschema)
+    schema = _load(ROOT / "catalog_schema" / "site.schema.json")
+    data = tomllib.loads((ROOT / "examples" / "site.toml").read_text())
+    assert not list(jsonschema.Draft202012Validator(schema).iter_errors(data))
+    assert _fields_missing(schema, data, "site.toml", schema.get("$defs", {})) == []
+    # the walk is able to fail: drop one nested field and it is named
+    data["catalog"]["providers"][0].pop("description")
+    assert _fields_missing(schema, data, "site.toml", schema["$defs"]) == ["site.toml.catalog.providers[].description"]
+
+
 def test_wheels_carry_every_schema() -> None:
     """pyproject's package-data globs (setuptools) must cover every file of catalog_schema/, which
     wheels install as archive/catalog_schema, or an installed scanshelf cannot validate offline."""

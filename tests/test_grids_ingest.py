@@ -79,7 +79,7 @@ def test_netcdf_displacement_components_and_strain_rates(tmp_path):
     assert xr.open_zarr(tmp_path / "shelf" / "grids" / "north-displacement.zarr").sizes["time"] == 1
 
 
-def test_esri_ascii_grid_crs_from_prj_and_missing_crs(tmp_path):
+def test_ascii_grid_crs_from_prj_and_missing_crs(tmp_path):
     def asc(name, crs):
         with rasterio.open(tmp_path / name, "w", driver="AAIGrid", height=30, width=20, count=1, dtype="float32",
                            crs=crs, transform=TRANSFORM, nodata=NODATA) as out:
@@ -132,3 +132,19 @@ def test_demo_products_of_each_kind(tmp_path):
     # the north DEMs (GeoTIFF then NetCDF, same grid, stamped names) form one time series
     assert xr.open_zarr(tmp_path / "shelf" / "grids" / "north-dem.zarr").sizes["time"] == 2
     assert {p for _, p in seen} >= {"dem", "displacement", "strain_rate"}
+
+
+def test_site_file_grid_rule_gives_station_product_and_crs(tmp_path):
+    from archive import survey
+    from archive.sitefile import parse_site_file
+
+    source = tmp_path / "src"
+    source.mkdir()
+    write_tif(source / "flow_20230101.tif", values()[None], None)  # at the root: no station folder
+    rules = {"site": {"crs": "EPSG:4326"},
+             "grids": {"files": [{"pattern": r"^flow_", "product": "displacement", "crs": EPSG, "station": "east"}]}}
+    (row,) = survey(str(source), parse_site_file(rules, "test")).files
+    assert (row.kind, row.status, row.station, row.product) == ("grid", "ok", "east", "displacement")
+    assert CRS.from_wkt(row.crs_wkt) == CRS.from_user_input(EPSG)  # the rule's CRS beats the site's
+    (row,) = survey(str(source)).files  # without the rule the root file has no station
+    assert row.status == "unusable" and "station" in row.problems[0]
