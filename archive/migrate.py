@@ -541,9 +541,9 @@ def _catalog_lag(shelf: Path, checksums: dict[str, str]) -> tuple[set[str], set[
     """Scans the ledger holds but the index lacks (or holds with other points), and index rows the
     ledger no longer has: what a run killed after its ledger commits left uncatalogued."""
     from archive.catalog.index import points_checksums
-    from archive.catalog.store import Shelf, multihash_sha256
+    from archive.catalog.store import ShelfFiles, multihash_sha256
 
-    listed = points_checksums(Shelf(str(shelf)))
+    listed = points_checksums(ShelfFiles(str(shelf)))
     behind = {scan_id for scan_id, sha in checksums.items() if listed.get(scan_id) != multihash_sha256(sha)}
     return behind, set(listed) - set(checksums)
 

@@ -34,7 +34,7 @@ from fsspec.implementations.local import LocalFileSystem
 
 from archive import layout
 from archive.catalog.grids import store_fingerprint
-from archive.catalog.store import Shelf, multihash_sha256, resolve_href
+from archive.catalog.store import ShelfFiles, multihash_sha256, resolve_href
 from archive.faults import crash_point
 from archive.query.shelf import redact
 
@@ -264,7 +264,7 @@ def publish(
     if dry_run:
         return report
     uploads = {e.path for e in entries if e.action == "upload"}
-    damaged = _damaged(Shelf(os.fspath(shelf), source_options), local, digests, uploads, manifest)
+    damaged = _damaged(ShelfFiles(os.fspath(shelf), source_options), local, digests, uploads, manifest)
     if damaged:
         raise PublishError(
             f"{shelf}: {len(damaged)} local file(s) no longer match the shelf's own catalog (damaged since "
@@ -357,7 +357,7 @@ def publish(
     return report
 
 
-def _damaged(shelf: Shelf, local: dict[str, int], digests: dict[str, str], uploads: set[str],
+def _damaged(shelf: ShelfFiles, local: dict[str, int], digests: dict[str, str], uploads: set[str],
              remote: dict[str, tuple[int, str]]) -> list[str]:
     """Files to upload whose bytes no longer match the checksums the shelf's own catalog records.
 

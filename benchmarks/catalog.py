@@ -30,7 +30,7 @@ sys.path.insert(0, os.path.join(os.path.dirname(__file__), ".."))
 
 from archive.catalog import build_catalog  # noqa: E402
 from archive.catalog.index import search_index as index_search  # noqa: E402
-from archive.catalog.store import Shelf  # noqa: E402
+from archive.catalog.store import ShelfFiles  # noqa: E402
 from archive.layout import ScanId, grid_path, points_path  # noqa: E402
 from archive.records import ColumnInfo, ScanRecord  # noqa: E402
 
@@ -84,7 +84,7 @@ def query_window() -> tuple[tuple[float, float, float, float], datetime, datetim
 
 def search_index(root: Path) -> list[str]:
     (w, s, e, n), t0, t1 = query_window()
-    return sorted(index_search(Shelf(str(root)), (w, s, e, n), t0, t1))
+    return sorted(index_search(ShelfFiles(str(root)), (w, s, e, n), t0, t1))
 
 
 def search_json(root: Path) -> list[str]:

@@ -87,13 +87,13 @@ def _wrap_writes() -> None:
     from archive.catalog import store
     from archive.faults import crash_point
 
-    write_bytes = store.Shelf.write_bytes
+    write_bytes = store.ShelfFiles.write_bytes
 
     def catalog_write(self, rel, data):
         crash_point("catalog.file")
         return write_bytes(self, rel, data)
 
-    store.Shelf.write_bytes = catalog_write
+    store.ShelfFiles.write_bytes = catalog_write
     zarr_set = LocalStore.set
 
     async def zarr_write(self, key, value):

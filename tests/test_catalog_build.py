@@ -527,10 +527,10 @@ def test_unlinked_item_file_is_reported(shelf) -> None:
 
 def test_search_index_by_area_time_and_station(shelf) -> None:
     from archive.catalog.index import search_index
-    from archive.catalog.store import Shelf
+    from archive.catalog.store import ShelfFiles
 
     root, records, _ = shelf
-    s = Shelf(str(root))
+    s = ShelfFiles(str(root))
     everywhere = (-180.0, -90.0, 180.0, 90.0)
     assert sorted(search_index(s, everywhere)) == sorted(r.scan_id for r in records)
     week2 = search_index(s, everywhere, T0 + timedelta(days=3), T0 + timedelta(days=10))

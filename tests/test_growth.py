@@ -76,18 +76,18 @@ def test_changed_source_replaces_its_scan(small_source, tmp_path):
 
 def test_cube_fingerprint_reads_only_new_or_changed_objects(tmp_path, monkeypatch):
     from archive.catalog.grids import store_fingerprint
-    from archive.catalog.store import Shelf
+    from archive.catalog.store import ShelfFiles
     from archive.ledger import Ledger
 
     cube = tmp_path / "grids/north.zarr"
     for i in range(5):
         (cube / f"elevation/c/{i}/0/0").parent.mkdir(parents=True, exist_ok=True)
         (cube / f"elevation/c/{i}/0/0").write_bytes(bytes([i]) * (100 + i))
-    shelf = Shelf(str(tmp_path))
+    shelf = ShelfFiles(str(tmp_path))
     plain = store_fingerprint(shelf, "grids/north.zarr")
     read = []
-    real = Shelf.sha256
-    monkeypatch.setattr(Shelf, "sha256", lambda self, rel: read.append(rel) or real(self, rel))
+    real = ShelfFiles.sha256
+    monkeypatch.setattr(ShelfFiles, "sha256", lambda self, rel: read.append(rel) or real(self, rel))
 
     with Ledger(tmp_path / "ledger.sqlite") as ledger:
         assert store_fingerprint(shelf, "grids/north.zarr", ledger) == plain and len(read) == 5
@@ -96,7 +96,7 @@ def test_cube_fingerprint_reads_only_new_or_changed_objects(tmp_path, monkeypatc
         (cube / "elevation/c/5/0/0").write_bytes(b"new epoch")  # one epoch appended
         grown = store_fingerprint(shelf, "grids/north.zarr", ledger)
         assert read == ["grids/north.zarr/elevation/c/5/0/0"]
-        assert grown == store_fingerprint(Shelf(str(tmp_path)), "grids/north.zarr")  # same as reading all
+        assert grown == store_fingerprint(ShelfFiles(str(tmp_path)), "grids/north.zarr")  # same as reading all
         assert grown != plain
 
         read.clear()
@@ -107,5 +107,5 @@ def test_cube_fingerprint_reads_only_new_or_changed_objects(tmp_path, monkeypatc
         (cube / "elevation/c/0/0/0").unlink()
         after = store_fingerprint(shelf, "grids/north.zarr", ledger)
         assert read == ["grids/north.zarr/elevation/c/2/0/0"]
-        assert after == store_fingerprint(Shelf(str(tmp_path)), "grids/north.zarr")
+        assert after == store_fingerprint(ShelfFiles(str(tmp_path)), "grids/north.zarr")
         assert sorted(ledger.object_hashes("grids/north.zarr")) == [f"elevation/c/{i}/0/0" for i in (1, 2, 3, 4, 5)]

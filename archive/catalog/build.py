@@ -26,7 +26,7 @@ from archive.catalog.collections import (
 from archive.catalog.grids import HashMemo, discover_grids, store_fingerprint
 from archive.catalog.index import index_table, items_of, merge_index, read_index, write_index
 from archive.catalog.items import scan_item
-from archive.catalog.store import Shelf
+from archive.catalog.store import ShelfFiles
 from archive.layout import (
     SCANS_INDEX,
     CATALOG,
@@ -64,7 +64,7 @@ def build_catalog(
     site file's [catalog] table (license, title, providers); ``memo`` keeps the cubes' object
     hashes between runs (see :func:`store_fingerprint`).
     """
-    shelf = Shelf(shelf_url, storage_options)
+    shelf = ShelfFiles(shelf_url, storage_options)
     old = _old_index(shelf)
     keep = {r.scan_id for r in records}
     stale = [] if old is None else [i for i in old.column("id").to_pylist() if i not in keep]
@@ -84,14 +84,14 @@ def update_catalog(
 
     ``settings`` None keeps the license, title and providers already in the catalog.
     """
-    shelf = Shelf(shelf_url, storage_options)
+    shelf = ShelfFiles(shelf_url, storage_options)
     old = _old_index(shelf)
     if settings is None:
         settings = settings_from_catalog(shelf)
     return _write(shelf, new_records, old, list(removed_ids), grids, settings, keep_old=True, memo=memo)
 
 
-def _old_index(shelf: Shelf) -> pa.Table | None:
+def _old_index(shelf: ShelfFiles) -> pa.Table | None:
     """The index as it stands; rebuilt from the Item files when only they survive."""
     if shelf.exists(SCANS_INDEX):
         return read_index(shelf)
@@ -101,7 +101,7 @@ def _old_index(shelf: Shelf) -> pa.Table | None:
 
 
 def _write(
-    shelf: Shelf,
+    shelf: ShelfFiles,
     records: Sequence[ScanRecord],
     old: pa.Table | None,
     removed_ids: list[str],
@@ -164,7 +164,7 @@ def _parse(text: str) -> datetime:
     return datetime.fromisoformat(text.replace("Z", "+00:00"))
 
 
-def _thumbnail(shelf: Shelf, record: ScanRecord, result: CatalogResult) -> tuple[int, str] | None:
+def _thumbnail(shelf: ShelfFiles, record: ScanRecord, result: CatalogResult) -> tuple[int, str] | None:
     if not record.preview_href:
         return None
     if not shelf.exists(record.preview_href):
@@ -173,7 +173,7 @@ def _thumbnail(shelf: Shelf, record: ScanRecord, result: CatalogResult) -> tuple
     return shelf.size(record.preview_href), shelf.sha256(record.preview_href)
 
 
-def _fingerprinted(shelf: Shelf, g: GridInfo, memo: HashMemo | None) -> GridInfo:
+def _fingerprinted(shelf: ShelfFiles, g: GridInfo, memo: HashMemo | None) -> GridInfo:
     if g.size is not None and g.checksum is not None:
         return g
     if not shelf.exists(g.href):
@@ -182,12 +182,12 @@ def _fingerprinted(shelf: Shelf, g: GridInfo, memo: HashMemo | None) -> GridInfo
     return replace(g, size=size, checksum=checksum)
 
 
-def _walk_items(shelf: Shelf) -> list[dict[str, Any]]:
+def _walk_items(shelf: ShelfFiles) -> list[dict[str, Any]]:
     root = shelf.path("scans/items")
     return [shelf.read_json(p[len(shelf.root) + 1 :]) for p in sorted(shelf.fs.glob(f"{root}/*/*.json"))]
 
 
-def settings_from_catalog(shelf: Shelf) -> dict[str, Any]:
+def settings_from_catalog(shelf: ShelfFiles) -> dict[str, Any]:
     """Recover the [catalog] settings from a catalog written earlier (placeholders dropped)."""
     if not shelf.exists(SCANS_COLLECTION):
         return {}
@@ -209,7 +209,7 @@ def records_from_ledger(shelf_url: str) -> list[ScanRecord]:
     """Every finished scan in the shelf's ledger (read-only; the ledger is local only)."""
     from archive.ledger import iter_scan_records
 
-    shelf = Shelf(shelf_url)
+    shelf = ShelfFiles(shelf_url)
     if not shelf.exists(LEDGER):
         raise FileNotFoundError(
             f"{shelf.path(LEDGER)} not found: `scanshelf catalog` needs a local shelf written by migrate"
@@ -223,5 +223,5 @@ def rebuild_catalog(
     """Rebuild the whole catalog from the ledger and the cubes on the shelf."""
     records = records_from_ledger(shelf_url)
     if settings is None:
-        settings = settings_from_catalog(Shelf(shelf_url, storage_options))
+        settings = settings_from_catalog(ShelfFiles(shelf_url, storage_options))
     return build_catalog(shelf_url, records, None, settings, storage_options)

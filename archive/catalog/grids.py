@@ -13,7 +13,7 @@ from typing import Protocol
 import numpy as np
 
 from archive.catalog.collections import GridInfo
-from archive.catalog.store import Shelf, multihash_sha256
+from archive.catalog.store import ShelfFiles, multihash_sha256
 from archive.storage import find_files
 
 
@@ -25,7 +25,7 @@ class HashMemo(Protocol):
     def keep_object_hashes(self, store: str, hashes: dict[str, tuple[int, float, str]]) -> None: ...
 
 
-def store_fingerprint(shelf: Shelf, href: str, memo: HashMemo | None = None) -> tuple[int, str]:
+def store_fingerprint(shelf: ShelfFiles, href: str, memo: HashMemo | None = None) -> tuple[int, str]:
     """(total bytes, multihash) of a directory store.
 
     The digest is SHA-256 over the sorted lines ``<path inside store>\\t<size>\\t<sha256>\\n``,
@@ -55,7 +55,7 @@ def store_fingerprint(shelf: Shelf, href: str, memo: HashMemo | None = None) -> 
     return total, multihash_sha256(digest.hexdigest())
 
 
-def discover_grids(shelf: Shelf) -> list[GridInfo]:
+def discover_grids(shelf: ShelfFiles) -> list[GridInfo]:
     """Every ``grids/*.zarr`` on the shelf, described from its own metadata."""
     import xarray as xr
 

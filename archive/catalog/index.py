@@ -24,7 +24,7 @@ import shapely
 from shapely.geometry import shape
 
 from archive.catalog import extensions as ext
-from archive.catalog.store import Shelf, multihash_sha256, resolve_href
+from archive.catalog.store import ShelfFiles, multihash_sha256, resolve_href
 from archive.layout import SCANS_INDEX, ScanId, item_path
 
 ROW_GROUP_ROWS = 256  # a few hundred Items: a `find` by station and time reads one or two groups
@@ -144,7 +144,7 @@ def items_of(table: pa.Table, ids: Iterable[str]) -> dict[str, dict[str, Any]]:
     return {i: json.loads(t) for i, t in zip(rows.column("id").to_pylist(), rows.column("item_json").to_pylist())}
 
 
-def points_checksums(shelf: Shelf) -> dict[str, str | None]:
+def points_checksums(shelf: ShelfFiles) -> dict[str, str | None]:
     """Scan id → the points asset's ``file:checksum`` per the index, read from two columns only."""
     if not shelf.exists(SCANS_INDEX):
         return {}
@@ -189,7 +189,7 @@ def _file_metadata(table: pa.Table, collection: dict[str, Any] | None) -> dict[b
     }
 
 
-def write_index(shelf: Shelf, table: pa.Table, collection: dict[str, Any] | None = None) -> tuple[int, str]:
+def write_index(shelf: ShelfFiles, table: pa.Table, collection: dict[str, Any] | None = None) -> tuple[int, str]:
     """Write ``scans/items.parquet`` (an :func:`index_table`) atomically; returns its size and multihash."""
     table = table.replace_schema_metadata(_file_metadata(table, collection))
     buf = io.BytesIO()
@@ -206,7 +206,7 @@ def write_index(shelf: Shelf, table: pa.Table, collection: dict[str, Any] | None
     return len(data), multihash_sha256(hashlib.sha256(data).hexdigest())
 
 
-def read_index(shelf: Shelf, columns: list[str] | None = None) -> pa.Table:
+def read_index(shelf: ShelfFiles, columns: list[str] | None = None) -> pa.Table:
     """The index as an Arrow table (all columns unless ``columns`` is given)."""
     with shelf.fs.open(shelf.path(SCANS_INDEX), "rb") as f:
         return pq.read_table(f, columns=columns)
@@ -216,7 +216,7 @@ _PRUNE = ("bbox.xmin", "bbox.ymin", "bbox.xmax", "bbox.ymax", "start_datetime", 
 
 
 def search_index(
-    shelf: Shelf,
+    shelf: ShelfFiles,
     bbox: tuple[float, float, float, float] | None = None,
     start: datetime | None = None,
     end: datetime | None = None,

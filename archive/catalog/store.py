@@ -19,7 +19,7 @@ CHUNK = 4 * 1024 * 1024
 MULTIHASH_SHA256 = "1220"  # multihash: code 0x12 (sha2-256), length 0x20 (32 bytes)
 
 
-class Shelf:
+class ShelfFiles:
     """A shelf root on some filesystem; paths given to it are shelf-relative."""
 
     def __init__(self, url: str, storage_options: dict | None = None) -> None:

@@ -15,7 +15,7 @@ import pyarrow.parquet as pq
 from archive.catalog import schema
 from archive.catalog.grids import store_fingerprint
 from archive.catalog.index import index_table, read_index
-from archive.catalog.store import Shelf, multihash_sha256, resolve_href
+from archive.catalog.store import ShelfFiles, multihash_sha256, resolve_href
 from archive.layout import CATALOG, SCANS_INDEX
 
 
@@ -51,7 +51,7 @@ def verify_shelf(
     ``quick`` compares sizes only (no checksums, no point counts); ``online`` also validates
     against the official extension schemas by URL.
     """
-    shelf = Shelf(shelf_url, storage_options)
+    shelf = ShelfFiles(shelf_url, storage_options)
     report = VerifyReport(shelf=shelf.url)
     if not shelf.exists(CATALOG):
         report.problems.append(f"{CATALOG}: missing - not a shelf, or its catalog was never written")
@@ -89,7 +89,7 @@ def verify_shelf(
     return report
 
 
-def _check_link_file(shelf: Shelf, target: str, link: dict[str, Any], report: VerifyReport) -> None:
+def _check_link_file(shelf: ShelfFiles, target: str, link: dict[str, Any], report: VerifyReport) -> None:
     """Linked files that carry file:size/file:checksum (the search index) are checked like assets."""
     import hashlib
 
@@ -102,7 +102,7 @@ def _check_link_file(shelf: Shelf, target: str, link: dict[str, Any], report: Ve
         report.problems.append(f"{target}: checksum differs from the catalog's; the file is damaged or was changed")
 
 
-def _check_orphans(shelf: Shelf, items: dict[str, dict[str, Any]], report: VerifyReport) -> None:
+def _check_orphans(shelf: ShelfFiles, items: dict[str, dict[str, Any]], report: VerifyReport) -> None:
     """Item files no Collection links to are invisible to readers: a half-finished update."""
     base = shelf.path("scans/items")
     for path in sorted(shelf.fs.glob(f"{base}/*/*.json")):
@@ -111,7 +111,7 @@ def _check_orphans(shelf: Shelf, items: dict[str, dict[str, Any]], report: Verif
             report.problems.append(f"{rel}: Item file not linked from scans/collection.json")
 
 
-def _load(shelf: Shelf, path: str, report: VerifyReport) -> dict[str, Any] | None:
+def _load(shelf: ShelfFiles, path: str, report: VerifyReport) -> dict[str, Any] | None:
     if not shelf.exists(path):
         report.problems.append(f"{path}: linked from the catalog but missing")
         return None
@@ -131,7 +131,7 @@ def _resolve(path: str, href: str, report: VerifyReport) -> str | None:
 
 
 def _check_asset(
-    shelf: Shelf, path: str, key: str, asset: dict, doc: dict, quick: bool, report: VerifyReport
+    shelf: ShelfFiles, path: str, key: str, asset: dict, doc: dict, quick: bool, report: VerifyReport
 ) -> None:
     target = _resolve(path, asset.get("href", ""), report)
     if target is None:
@@ -171,7 +171,7 @@ def _check_asset(
             report.problems.append(f"{where}: holds {rows} points, catalog says {doc['properties']['pc:count']}")
 
 
-def _check_index(shelf: Shelf, items: dict[str, dict[str, Any]], report: VerifyReport) -> None:
+def _check_index(shelf: ShelfFiles, items: dict[str, dict[str, Any]], report: VerifyReport) -> None:
     """The index must hold exactly the Items linked from the scans Collection, unchanged."""
     if not shelf.exists(SCANS_INDEX):
         report.problems.append(f"{SCANS_INDEX}: missing")

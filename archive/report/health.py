@@ -19,7 +19,7 @@ import pandas as pd
 import pyarrow.parquet as pq
 
 from archive import layout
-from archive.catalog.store import Shelf as ShelfFiles
+from archive.catalog.store import ShelfFiles
 from archive.query.shelf import redact, safe_href
 from archive.storage import is_local
 
