@@ -23,7 +23,7 @@ import numpy as np
 
 from archive import layout
 from archive.cluster import DEFAULT_MEMORY_PER_WORKER, DaskExecutor, SerialExecutor
-from archive.faults import crash_point
+from archive.crashpoints import crash_point
 from archive.grids import GridAccumulator, GridSpec, EpochGrid, write_epoch
 from archive.layout import ScanId
 from archive.ledger import Ledger

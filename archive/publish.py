@@ -35,8 +35,9 @@ from fsspec.implementations.local import LocalFileSystem
 from archive import layout
 from archive.catalog.grids import store_fingerprint
 from archive.catalog.store import ShelfFiles, multihash_sha256, resolve_href
-from archive.faults import crash_point
-from archive.query.shelf import redact
+from archive.crashpoints import crash_point
+from archive.hrefs import redact
+from archive.storage import filesystem
 
 log = logging.getLogger(__name__)
 
@@ -66,7 +67,7 @@ class PublishError(RuntimeError):
 
 
 @dataclass(frozen=True)
-class FileEntry:
+class ManifestEntry:
     path: str  # shelf-relative, forward slashes
     size: int
     sha256: str
@@ -77,7 +78,7 @@ class FileEntry:
 class PublishReport:
     dest: str  # redacted
     dry_run: bool
-    files: list[FileEntry] = field(default_factory=list)
+    files: list[ManifestEntry] = field(default_factory=list)
 
     @property
     def uploaded(self) -> list[str]:
@@ -181,7 +182,7 @@ def _remote_sizes(fs, root: str) -> dict[str, int]:
     return out
 
 
-def manifest_table(entries: list[FileEntry]) -> pa.Table:
+def manifest_table(entries: list[ManifestEntry]) -> pa.Table:
     """Every published file: path, size in bytes, SHA-256 hex digest."""
     return pa.table(
         {
@@ -219,8 +220,8 @@ def publish(
     options = dict(storage_options or {})
     shown = redact(os.fspath(dest))
     try:
-        src_fs, src_root = fsspec.url_to_fs(os.fspath(shelf), **(source_options or {}))
-        dst_fs, dst_root = fsspec.url_to_fs(os.fspath(dest), **options)
+        src_fs, src_root = filesystem(os.fspath(shelf), source_options)
+        dst_fs, dst_root = filesystem(os.fspath(dest), options)
     except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
         raise PublishError(f"{shown}: cannot open the destination: {_scrub(str(e), options)}") from None
     src_root, dst_root = src_root.rstrip("/"), dst_root.rstrip("/")
@@ -257,7 +258,7 @@ def publish(
 
     with ThreadPoolExecutor(max_workers=workers) as pool:
         same = dict(zip(paths, pool.map(unchanged, paths)))
-    entries = [FileEntry(p, local[p], digests[p], "skip" if same[p] else "upload") for p in paths]
+    entries = [ManifestEntry(p, local[p], digests[p], "skip" if same[p] else "upload") for p in paths]
     report = PublishReport(shown, dry_run, entries)
     manifest_bytes = _manifest_bytes(entries)
     manifest_sha = hashlib.sha256(manifest_bytes).hexdigest()
@@ -296,7 +297,7 @@ def publish(
             crash_point("publish.temp")
             dst_fs.mv(tmp, target)
 
-    def check(entry: FileEntry) -> str | None:
+    def check(entry: ManifestEntry) -> str | None:
         target = f"{dst_root}/{entry.path}"
         try:
             size = int(dst_fs.info(target)["size"])
@@ -308,7 +309,7 @@ def publish(
             return f"{entry.path}: cannot read back: {type(e).__name__}: {_scrub(str(e), options)}"
         return None
 
-    def send(entry: FileEntry) -> str | None:
+    def send(entry: ManifestEntry) -> str | None:
         """Upload and read back until the copy verifies; the last problem if it never does."""
         problem = None
         for attempt in range(retries):
@@ -389,7 +390,7 @@ def _damaged(shelf: ShelfFiles, local: dict[str, int], digests: dict[str, str], 
     return sorted(found)
 
 
-def _manifest_bytes(entries: list[FileEntry]) -> bytes:
+def _manifest_bytes(entries: list[ManifestEntry]) -> bytes:
     buf = io.BytesIO()
     pq.write_table(manifest_table(entries), buf, compression="zstd")
     return buf.getvalue()

@@ -3,7 +3,7 @@
 Importing scanshelf's dependencies takes seconds; a tiny migration takes less. So commands run
 in processes forked from a multiprocessing *forkserver* that imported everything once: each run
 is still its own process with its own memory, killed by SIGKILL from outside (random delays) or
-by itself at a named crash point (``archive.faults``), with no chance to clean up.
+by itself at a named crash point (``archive.crashpoints``), with no chance to clean up.
 
 Besides the crash points in the library, the child adds two kinds by wrapping, for this harness
 only: ``catalog.file`` before every catalog file is written, and ``zarr.object`` after every
@@ -26,12 +26,12 @@ from pathlib import Path
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from archive import faults
+from archive import crashpoints
 from tests import factory
 
 PRELOAD = [
     "archive.cli", "archive.migrate", "archive.publish", "archive.catalog", "archive.grids",
-    "archive.report.previews", "archive.faults", "tests.killing", "laspy", "zarr", "xarray",
+    "archive.report.previews", "archive.crashpoints", "tests.killing", "laspy", "zarr", "xarray",
     "matplotlib.pyplot",
 ]
 EXIT_MARK = "EXIT_CODE"
@@ -53,9 +53,9 @@ def _child(argv: list[str], crash_at: str | None, crash_log: str | None, out: st
     os.dup2(fd, 1)
     os.dup2(fd, 2)
     os.environ.update(env)
-    from archive import faults
+    from archive import crashpoints
 
-    faults.configure(crash_at, crash_log)
+    crashpoints.configure(crash_at, crash_log)
     _wrap_writes()
     from archive.cli import cli
     from archive.cli.common import fail_cleanly
@@ -85,7 +85,7 @@ def _wrap_writes() -> None:
     from zarr.storage import LocalStore
 
     from archive.catalog import store
-    from archive.faults import crash_point
+    from archive.crashpoints import crash_point
 
     write_bytes = store.ShelfFiles.write_bytes
 
@@ -146,7 +146,7 @@ def _exit_code(reported: int, we_killed: bool, text: str) -> int:
     """
     if reported != 255:
         return reported
-    if we_killed or faults.KILLED_MARK in text:
+    if we_killed or crashpoints.KILLED_MARK in text:
         return -9
     codes = re.findall(rf"^{EXIT_MARK} (-?\d+)$", text, flags=re.M)
     return int(codes[-1]) if codes else reported

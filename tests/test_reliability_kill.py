@@ -1,7 +1,7 @@
 """Kill anywhere, resume to the same result.
 
 `scanshelf migrate` and `scanshelf publish` run in their own processes and are killed with
-SIGKILL at named crash points in the write path (archive.faults) and after random delays; the
+SIGKILL at named crash points in the write path (archive.crashpoints) and after random delays; the
 same command is then run again and the shelf must equal a clean run's: the same files, the
 same decoded points per scan, the same catalog apart from the ``published`` timestamps, no
 temporary files, no scan twice and a ledger that agrees with the files.

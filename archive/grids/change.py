@@ -18,7 +18,6 @@ import tempfile
 from dataclasses import dataclass
 from datetime import datetime, timezone
 
-import fsspec
 import numpy as np
 import shapely
 import shapely.geometry
@@ -26,6 +25,7 @@ import xarray as xr
 
 from archive.grids.cube import open_cube, read_spec, zarr_store
 from archive.layout import grid_path
+from archive.storage import filesystem
 
 NMAD_SCALE = 1.4826  # makes the median absolute deviation equal σ for normal errors (common practice)
 
@@ -84,7 +84,7 @@ class ChangeResult:
 
 def _write_local_then_put(url: str, storage_options: dict | None, write) -> None:
     """Write through a local temporary file, then move/upload it whole into place."""
-    fs, path = fsspec.core.url_to_fs(url, **(storage_options or {}))
+    fs, path = filesystem(url, storage_options)
     suffix = os.path.splitext(path)[1]
     with tempfile.TemporaryDirectory() as tmp:
         local = os.path.join(tmp, "out" + suffix)

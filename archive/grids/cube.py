@@ -26,7 +26,6 @@ import uuid
 import warnings
 from datetime import datetime, timezone
 
-import fsspec
 import numpy as np
 import pandas as pd
 import xarray as xr
@@ -36,6 +35,7 @@ from zarr.codecs import ZstdCodec
 
 from archive.grids.binning import EpochGrid
 from archive.grids.spec import GridSpec
+from archive.storage import filesystem
 
 SPEC_ATTR = "scanshelf:grid_spec"
 SERIES_GROUP = "series"
@@ -64,7 +64,7 @@ VARIABLE_ATTRS = {
 
 
 def _fs(url: str, storage_options: dict | None):
-    fs, path = fsspec.core.url_to_fs(url, **(storage_options or {}))
+    fs, path = filesystem(url, storage_options)
     return fs, path
 
 

@@ -19,7 +19,6 @@ from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import PurePosixPath
 
-import fsspec
 import numpy as np
 import xarray as xr
 from pyproj import CRS
@@ -29,6 +28,7 @@ from archive.grids.cube import zarr_store
 from archive.grids.spec import GridSpec
 from archive.layout import check_station, grid_path
 from archive.sources.grids import COMPONENTS, grid_format, guess_product, local_copy, open_grid, time_from_name
+from archive.storage import filesystem
 
 CHUNK = 256
 
@@ -144,7 +144,7 @@ def ingest_grid(
     """
     check_station(station)
     fmt = grid_format(path_or_url)
-    fs, path = fsspec.core.url_to_fs(path_or_url, **(storage_options or {}))
+    fs, path = filesystem(path_or_url, storage_options)
     with local_copy(fs, path) as local:
         try:
             ds = open_grid(local, fmt)
@@ -174,7 +174,7 @@ def ingest_grid(
 
 
 def _write(ds: xr.Dataset, url: str, source: str, storage_options: dict | None) -> None:
-    fs, path = fsspec.core.url_to_fs(url, **(storage_options or {}))
+    fs, path = filesystem(url, storage_options)
     if not fs.exists(f"{path}/zarr.json"):
         _write_new(ds, url, fs, path, storage_options)
         return

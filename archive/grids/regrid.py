@@ -13,7 +13,6 @@ from collections import defaultdict
 from dataclasses import dataclass
 from pathlib import PurePosixPath
 
-import fsspec
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -25,6 +24,7 @@ from archive.grids.cube import read_spec, write_epoch
 from archive.grids.series import write_series
 from archive.grids.spec import GridSpec
 from archive.layout import ScanId, check_station, grid_path
+from archive.storage import filesystem
 
 
 @dataclass(frozen=True)
@@ -93,7 +93,7 @@ def grid_shelf(
     """
     if station is not None:
         check_station(station)
-    fs, root = fsspec.core.url_to_fs(shelf, **(storage_options or {}))
+    fs, root = filesystem(shelf, storage_options)
     root = root.rstrip("/")
     files = _points_files(fs, root, station)
     if not files:

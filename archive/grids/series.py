@@ -15,7 +15,6 @@ the tests read them back with zarr-python and compare with the map layout.
 from __future__ import annotations
 
 import dask.array as da
-import fsspec
 import google_crc32c
 import numpy as np
 import xarray as xr
@@ -23,6 +22,7 @@ import zarr
 
 from archive.grids.cube import (CUBE_VARS, SERIES_COMPLETE, SERIES_GROUP, SERIES_TILE, open_cube,
                                 zarr_store)
+from archive.storage import filesystem
 
 EMPTY = np.uint64(2**64 - 1)  # index entry of a chunk that is not stored (sharding spec)
 BLOCK = 256  # cells per side read from the map layout at a time (memory: T × 256 × 256 values)
@@ -69,7 +69,7 @@ def write_series(cube_url: str, storage_options: dict | None = None) -> None:
     ds = open_cube(cube_url, storage_options)
     ds = ds[list(CUBE_VARS)].assign_coords(scan_id=ds["scan_id"])
     _skeleton(ds, cube_url, storage_options)
-    fs, root = fsspec.core.url_to_fs(cube_url, **(storage_options or {}))
+    fs, root = filesystem(cube_url, storage_options)
     group = zarr.open_group(zarr_store(cube_url, storage_options), mode="r+", zarr_format=3, use_consolidated=False)
     ny, nx = ds.sizes["y"], ds.sizes["x"]
     for name in CUBE_VARS:

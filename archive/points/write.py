@@ -17,12 +17,12 @@ import math
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 
-import fsspec
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..records import ColumnInfo
+from ..storage import filesystem
 from .hilbert import SiteGrid
 from .sort import COORDS, sorted_row_groups
 
@@ -107,7 +107,8 @@ def write_scan(
     stats: dict[str, _Moments] = {}
     rows = count = 0
     writer: pq.ParquetWriter | None = None
-    with fsspec.open(dest, "wb", **(storage_options or {})) as raw:
+    fs, path = filesystem(dest, storage_options)
+    with fs.open(path, "wb") as raw:
         sink = _HashingSink(raw)
         try:
             for table in groups:

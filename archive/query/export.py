@@ -15,7 +15,6 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-import fsspec
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -27,6 +26,7 @@ from archive.points.coords import AxisEncoding, units_of
 from archive.query.iostats import IOStats
 from archive.query.points import AXES, read_scan
 from archive.query.shelf import Scan, TimeLike, open_shelf
+from archive.storage import filesystem
 
 FORMATS = {".parquet": "parquet", ".pq": "parquet", ".las": "las", ".laz": "laz", ".csv": "csv"}
 POINT_FORMAT_BY_COLOUR = {False: 6, True: 7}  # LAS 1.4 formats with GPS time (and RGB)
@@ -103,7 +103,7 @@ def axes_of_table(table: pa.Table) -> dict[str, AxisEncoding]:
 
 def _write_atomic(out: str, options: dict | None, write: Callable[[str], None]) -> None:
     """Write to a temporary name next to the target (or locally, then upload) and rename."""
-    fs, path = fsspec.url_to_fs(out, **(options or {}))
+    fs, path = filesystem(out, options)
     if isinstance(fs, LocalFileSystem):
         folder = os.path.dirname(os.path.abspath(path))
         os.makedirs(folder, exist_ok=True)

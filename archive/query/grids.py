@@ -11,17 +11,17 @@ from __future__ import annotations
 import warnings
 from typing import TYPE_CHECKING
 
-import fsspec
 import xarray as xr
 
 from archive.query.iostats import CountingFileSystem
+from archive.storage import filesystem
 
 if TYPE_CHECKING:
     from archive.query.shelf import Shelf
 
 
 def _async_fs(shelf: Shelf) -> CountingFileSystem:
-    inner, root = fsspec.url_to_fs(shelf._raw_url, **{**shelf._storage_options, "asynchronous": True})
+    inner, root = filesystem(shelf._raw_url, {**shelf._storage_options, "asynchronous": True})
     if not inner.async_impl:
         from fsspec.implementations.asyn_wrapper import AsyncFileSystemWrapper
 

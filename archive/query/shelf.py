@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import io
 import json
-import posixpath
 import re
 from collections.abc import Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
@@ -17,17 +16,17 @@ from dataclasses import dataclass, field
 from datetime import date, datetime
 from functools import cached_property
 from typing import Any
-from urllib.parse import urlsplit, urlunsplit
 
-import fsspec
 import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
 from archive import layout
+from archive.hrefs import redact, safe_href
 from archive.query.iostats import CountingFileSystem, IOStats
 from archive.query.points import BBox, ScanFile, read_scan
+from archive.storage import filesystem
 
 TimeLike = datetime | date | str | np.datetime64 | pd.Timestamp | None
 MAX_JSON_BYTES = 8 << 20  # a root catalog is a few KB; a larger one is refused unread
@@ -41,27 +40,6 @@ def parse_json(data: bytes | str, where: str) -> Any:
         raise ValueError(f"{where}: JSON nested too deeply; refused") from None
     except ValueError as e:
         raise ValueError(f"{where}: not valid JSON ({e}); the file may be damaged or half-written") from None
-
-
-def redact(url: str) -> str:
-    """A URL fit for messages and logs: no user, password or query string (signed URLs)."""
-    parts = urlsplit(url)
-    if len(parts.scheme) < 2 or parts.scheme == "file":  # paths, incl. Windows drive letters
-        return url
-    host = parts.hostname or ""
-    if parts.port:
-        host = f"{host}:{parts.port}"
-    return urlunsplit((parts.scheme, host, parts.path, "", ""))
-
-
-def safe_href(href: str, where: str) -> str:
-    """A shelf-relative href, normalised; refuse schemes, absolute paths and escapes."""
-    if re.match(r"^[A-Za-z][A-Za-z0-9+.-]*:", href) or href.startswith(("/", "\\")):
-        raise ValueError(f"{where}: href {href!r} is not relative to the shelf root; refused")
-    norm = posixpath.normpath(href)
-    if norm == ".." or norm.startswith("../") or "\\" in norm:
-        raise ValueError(f"{where}: href {href!r} escapes the shelf root; refused")
-    return norm
 
 
 def as_utc(value: TimeLike, *, end: bool = False) -> pd.Timestamp | None:
@@ -250,7 +228,7 @@ class Shelf:
         self.url = redact(str(url))
         self._storage_options = dict(storage_options or {})
         self._raw_url = str(url)
-        inner, root = fsspec.url_to_fs(self._raw_url, **self._storage_options)
+        inner, root = filesystem(self._raw_url, self._storage_options)
         self.io = IOStats()
         self.fs = CountingFileSystem(root.rstrip("/"), inner, self.io)
         try:

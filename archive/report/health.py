@@ -20,7 +20,7 @@ import pyarrow.parquet as pq
 
 from archive import layout
 from archive.catalog.store import ShelfFiles
-from archive.query.shelf import redact, safe_href
+from archive.hrefs import redact, safe_href
 from archive.storage import is_local
 
 GAP_FACTOR = 1.5  # an interval longer than this many median intervals is a gap (our own rule of thumb)

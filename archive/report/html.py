@@ -101,7 +101,7 @@ def _link_base(shelf_url: str, output: str) -> str:
     shelf_url = str(shelf_url)
     scheme = urlsplit(shelf_url).scheme
     if scheme in ("http", "https"):
-        from archive.query.shelf import redact
+        from archive.hrefs import redact
 
         return redact(shelf_url).rstrip("/") + "/"
     out_scheme = urlsplit(str(output)).scheme

@@ -14,7 +14,6 @@ import warnings
 import io
 import math
 
-import fsspec
 import matplotlib
 
 matplotlib.use("Agg")
@@ -25,6 +24,7 @@ from matplotlib.colors import LightSource, Normalize, TwoSlopeNorm  # noqa: E402
 
 from archive.grids.binning import EpochGrid  # noqa: E402
 from archive.grids.spec import GridSpec  # noqa: E402
+from archive.storage import filesystem  # noqa: E402
 
 
 def _nice_length(span: float) -> float:
@@ -50,7 +50,7 @@ def _save(fig, url: str, storage_options: dict | None) -> None:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=100)
     plt.close(fig)
-    fs, path = fsspec.core.url_to_fs(url, **(storage_options or {}))
+    fs, path = filesystem(url, storage_options)
     parent = path.rsplit("/", 1)[0] if "/" in path else ""
     if parent:
         fs.makedirs(parent, exist_ok=True)
