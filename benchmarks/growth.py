@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import argparse
 import shutil
+import tempfile
 import sys
 import time
 from datetime import timedelta
@@ -45,7 +46,8 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--scans", type=int, default=1000)
     parser.add_argument("--points", type=int, default=20_000)
-    parser.add_argument("--workdir", default="/tmp/scanshelf-bench-growth")
+    parser.add_argument("--workdir", default=str(Path(tempfile.gettempdir()) / "scanshelf-bench-growth"),
+                        help="emptied and reused (default: scanshelf-bench-growth in the system temp folder)")
     args = parser.parse_args()
     work = Path(args.workdir)
     shutil.rmtree(work, ignore_errors=True)

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import argparse
 import shutil
+import tempfile
 import threading
 import time
 from datetime import datetime, timedelta, timezone
@@ -130,7 +131,8 @@ def main() -> None:
     parser.add_argument("--scans", type=int, default=50)
     parser.add_argument("--single", type=int, default=200_000_000, help="points of the single-scan run (0: skip)")
     parser.add_argument("--workers", default="1,2", help="worker counts to run, comma-separated")
-    parser.add_argument("--workdir", default="/tmp/scanshelf-bench-scale")
+    parser.add_argument("--workdir", default=str(Path(tempfile.gettempdir()) / "scanshelf-bench-scale"),
+                        help="emptied and reused (default: scanshelf-bench-scale in the system temp folder)")
     args = parser.parse_args()
     work = Path(args.workdir)
     shutil.rmtree(work, ignore_errors=True)
