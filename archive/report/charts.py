@@ -1,52 +1,39 @@
 """The health report's pictures, each returned as PNG bytes ready to embed in the page.
 
-Maps reuse the preview renderers (one look for elevation and change across the shelf); the
-coverage chart and the density map are drawn here. Agg backend: no display needed.
+Maps are drawn straight from the grids like the previews (archive.report.raster: one look for
+elevation, density and change across the shelf, no figure per map). The coverage chart is a
+real chart (dates, stems, legend), drawn on one matplotlib Figure with the Agg canvas and
+without pyplot, whose import alone costs most of a second.
 """
 
 from __future__ import annotations
 
 import io
-import os
-import tempfile
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from datetime import datetime
 
-import matplotlib
-
-matplotlib.use("Agg")
 import matplotlib.dates as mdates
-import matplotlib.pyplot as plt
 import matplotlib.ticker as mticker
 import numpy as np
 import xarray as xr
-from matplotlib.colors import LogNorm
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 
 from archive.report.health import Gap
-from archive.report.previews import render_change, render_preview
+from archive.report.previews import _array_extent, _block_mean, change_png, crop_to_data, preview_png
+from archive.report.raster import Scale, colorize, map_png
 
 INK = "#1f2a30"
 SCAN = "#2f6f73"
 PARTIAL = "#a33b2b"
 GAP = "#d9a441"
-MAX_CELLS = 640  # density maps larger than this are block-averaged for display
 
 
-def _png(fig) -> bytes:
+def _png(fig: Figure) -> bytes:
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=100)
-    plt.close(fig)
+    FigureCanvasAgg(fig).print_png(buf)
     return buf.getvalue()
-
-
-def _via_file(render: Callable[[str], None]) -> bytes:
-    """Run a renderer that writes a PNG to a path, and return the bytes."""
-    with tempfile.TemporaryDirectory(prefix="scanshelf-report-") as tmp:
-        path = os.path.join(tmp, "figure.png")
-        render(path)
-        with open(path, "rb") as f:
-            return f.read()
 
 
 def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Sequence[bool],
@@ -55,8 +42,8 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
     t = np.array([np.datetime64(x.replace(tzinfo=None), "us") for x in times])
     n = np.asarray(points, dtype=float)
     bad = np.asarray(partial, dtype=bool)
-    fig, (strip, bars) = plt.subplots(2, 1, figsize=(9.6, 3.6), sharex=True,
-                                      gridspec_kw={"height_ratios": [1, 3], "hspace": 0.08})
+    fig = Figure(figsize=(9.6, 3.6), dpi=100)
+    strip, bars = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [1, 3], "hspace": 0.08})
     for ax in (strip, bars):
         for g in gaps:
             ax.axvspan(np.datetime64(g.start.replace(tzinfo=None)), np.datetime64(g.end.replace(tzinfo=None)),
@@ -69,8 +56,8 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
     strip.set_yticks([])
     strip.set_title(title, fontsize=10, color=INK, loc="left")
     markers, stems, _ = bars.stem(t, n, basefmt=" ")
-    plt.setp(stems, color=SCAN, lw=1)
-    plt.setp(markers, color=SCAN, markersize=3)
+    stems.set(color=SCAN, lw=1)
+    markers.set(color=SCAN, markersize=3)
     if bad.any():
         bars.plot(t[bad], n[bad], "o", color=PARTIAL, markersize=4)
     bars.set_ylabel("points per scan", fontsize=8, color=INK)
@@ -90,45 +77,33 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
     return _png(fig)
 
 
-def elevation_map(elevation: xr.DataArray, title: str) -> bytes:
+def elevation_map(elevation: xr.DataArray, title: str, crop: bool = True) -> bytes:
     """One epoch's elevation, hillshaded, as the shelf's previews draw it."""
-    return _via_file(lambda path: render_preview(elevation, path, title=title))
+    return preview_png(elevation, title=title, crop=crop)
 
 
-def change_map(change, title: str) -> bytes:
+def change_map(change, title: str, crop: bool = False) -> bytes:
     """A ChangeResult as the shelf's change previews draw it (red lowering, blue raising)."""
-    return _via_file(lambda path: render_change(change, path, title=title))
+    return change_png(change, title, crop=crop)
 
 
-def density_map(point_count: xr.DataArray, title: str) -> bytes:
-    """Points per square metre of one epoch, cropped to the cells that hold points, log colours."""
-    x = point_count["x"].values
-    cell = float(abs(x[1] - x[0])) if x.size > 1 else 1.0
-    counts = point_count.transpose("y", "x").astype("float64")
-    counts = counts.where(counts > 0)
-    rows = np.flatnonzero(counts.notnull().any("x").values)
-    cols = np.flatnonzero(counts.notnull().any("y").values)
-    fig, ax = plt.subplots(figsize=(6.4, 5.2))
-    if rows.size:
-        counts = counts.isel(y=slice(rows[0], rows[-1] + 1), x=slice(cols[0], cols[-1] + 1))
-        factor = -(-max(counts.shape) // MAX_CELLS)
-        if factor > 1:
-            counts = counts.coarsen(x=factor, y=factor, boundary="pad").mean()
-        density = counts / cell**2
-        xs, ys = density["x"].values, density["y"].values
-        step = cell * max(factor, 1)
-        extent = (xs.min() - step / 2, xs.max() + step / 2, ys.min() - step / 2, ys.max() + step / 2)
-        values = density.values if ys[0] > ys[-1] else density.values[::-1]
-        lo, hi = np.nanmin(values), np.nanmax(values)
-        im = ax.imshow(np.ma.masked_invalid(values), extent=extent, cmap="YlGnBu",
-                       norm=LogNorm(lo, hi if hi > lo else lo * 10), interpolation="nearest")
-        fig.colorbar(im, ax=ax, shrink=0.85, label="points per m²")
-        ax.set_xlabel("easting (m)")
-        ax.set_ylabel("northing (m)")
-        ax.ticklabel_format(useOffset=False, style="plain")
-    else:
-        ax.text(0.5, 0.5, "no points in this epoch", transform=ax.transAxes, ha="center")
-    ax.tick_params(labelsize=7)
-    ax.set_title(title, fontsize=10)
-    fig.subplots_adjust(left=0.15, right=0.95, bottom=0.1, top=0.92)  # fixed: tight_layout is slow
-    return _png(fig)
+def density_map(point_count: xr.DataArray, title: str, crop: bool = True) -> bytes:
+    """Points per square metre of one epoch, log colours stretched between the 2nd and 98th
+    percentiles: a few very dense cells next to the scanner no longer push the rest of the map
+    into one end of the palette. A grid too big to show cell by cell shows the points per m² of
+    each block of cells, empty cells included."""
+    counts, extent, cell = _array_extent(point_count)
+    counts = np.where(counts > 0, counts, np.nan)
+    if crop:
+        counts, extent = crop_to_data(counts, extent, cell)
+    counts, extent, block = _block_mean(counts, extent, cell, total=True)  # a big grid: points per block
+    density = counts / (block * block)
+    finite = density[np.isfinite(density)]
+    if not finite.size:
+        return map_png(np.zeros((*density.shape, 4), np.uint8), extent, None, title=title,
+                       note="no points in this epoch")
+    lo, hi = (float(v) for v in np.percentile(finite, [2, 98]))
+    hi = hi if hi > lo else lo * 10
+    scale = Scale("viridis", lo, hi, log=True, label="points per m²")
+    return map_png(colorize(density, scale), extent, scale, title=title,
+                   extend=(bool(finite.min() < lo), bool(finite.max() > hi)))
