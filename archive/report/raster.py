@@ -79,7 +79,7 @@ def nice_length(span: float) -> float:
 
 
 @lru_cache(maxsize=None)
-def _font(size: int) -> ImageFont.FreeTypeFont:
+def font(size: int) -> ImageFont.FreeTypeFont:
     return ImageFont.truetype(str(FONT_FILE), size)
 
 
@@ -115,7 +115,7 @@ def map_png(rgba: np.ndarray, extent: tuple[float, float, float, float], scale: 
     resample = Image.Resampling.NEAREST if zoom >= 1 else Image.Resampling.BOX
     cells = cells.resize((w, h), resample)
 
-    title_font, small = _font(16), _font(13)
+    title_font, small = font(16), font(13)
     pad, top = 12, (34 if title else 12)
     right = (BAR_WIDTH + 84) if scale is not None else 0
     bottom = 26 + (18 if note else 0)
