@@ -89,3 +89,32 @@ def test_maps_of_the_same_extent_have_the_same_size():
     a = _decode(charts.elevation_map(elevation, "e"))
     b = _decode(charts.density_map(counts, "d"))
     assert a.shape == b.shape
+
+
+def test_coverage_chart_marks_partial_scans_and_shades_gaps():
+    from datetime import datetime, timedelta, timezone
+
+    from archive.report.health import Gap
+
+    day = datetime(2026, 9, 1, 6, tzinfo=timezone.utc)
+    times = [day, day + timedelta(days=1), day + timedelta(days=2), day + timedelta(days=8)]
+    png = charts.coverage_chart(times, [40_000, 30_000, 35_000, 20_000], [False, True, False, False],
+                                [Gap(times[2], times[3])], "north")
+    img = _decode(png).astype(int)
+    assert img.shape == (360, 960, 3)
+    strip = img[45:95]  # the strip of one tick per scan
+
+    def columns_near(rgb, rows):
+        return np.flatnonzero((np.abs(rows - np.array(rgb)).sum(axis=2) < 60).any(axis=0))
+
+    red = columns_near((0xA3, 0x3B, 0x2B), strip)
+    teal = columns_near((0x2F, 0x6F, 0x73), strip)
+    assert red.size and teal.size
+    # reference: a linear time axis by hand: the partial scan (day 1 of 0..8) sits 1/8 of the way along
+    first, last = teal.min(), teal.max()
+    assert abs(red.mean() - (first + (last - first) / 8)) < 4
+    # the gap (third to fourth scan) is shaded; the time between the first two scans is not
+    gap_colour = np.array([0xD9, 0xA4, 0x41]) * 0.35 + 255 * 0.65
+    middle = img[200, int(first + (last - first) * 0.6)]
+    quiet = img[200, int(first + (last - first) * 0.06)]
+    assert np.abs(middle - gap_colour).sum() < 12 and (quiet > 250).all()
