@@ -120,7 +120,7 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
         x -= 14 * SS
     img = img.resize((WIDTH, HEIGHT), Image.Resampling.LANCZOS)
     buf = io.BytesIO()
-    img.save(buf, format="PNG", compress_level=6)
+    img.save(buf, format="PNG", compress_level=1)
     return buf.getvalue()
 
 

@@ -54,24 +54,26 @@ def _array_extent(da: xr.DataArray) -> tuple[np.ndarray, tuple[float, float, flo
 
 MAX_PIXELS = 640  # a preview is a quick look: larger grids are block-averaged to at most this a side
 
+
 def _block_mean(z: np.ndarray, extent: tuple[float, float, float, float], cell: float, total: bool = False):
     """Average (or with ``total``, add up) blocks of cells, NaN ignored, so neither side exceeds
-    MAX_PIXELS; a block without data stays NaN."""
+    MAX_PIXELS; a block without data stays NaN. Single precision: these are display values."""
     f = -(-max(z.shape) // MAX_PIXELS)
     if f <= 1:
         return z, extent, cell
-    ny, nx = -(-z.shape[0] // f) * f, -(-z.shape[1] // f) * f
-    held = np.zeros((ny, nx), np.float32)
-    values = np.zeros((ny, nx), np.float64)
+    ny, nx = -(-z.shape[0] // f), -(-z.shape[1] // f)
     finite = np.isfinite(z)
-    held[: z.shape[0], : z.shape[1]] = finite
-    values[: z.shape[0], : z.shape[1]] = np.where(finite, z, 0.0)
+    values = np.where(finite, z, 0).astype(np.float32, copy=False)
+    if values.shape != (ny * f, nx * f):
+        pad = ((0, ny * f - z.shape[0]), (0, nx * f - z.shape[1]))
+        values, finite = np.pad(values, pad), np.pad(finite, pad)
     # sums over one axis at a time: several times faster than nanmean over a 4-d view
-    count = held.reshape(ny // f, f, nx).sum(axis=1).reshape(ny // f, nx // f, f).sum(axis=2)
-    total_ = values.reshape(ny // f, f, nx).sum(axis=1).reshape(ny // f, nx // f, f).sum(axis=2)
+    count = finite.reshape(ny, f, nx * f).sum(axis=1, dtype=np.uint16).reshape(ny, nx, f).sum(axis=2)
+    sums = values.reshape(ny, f, nx * f).sum(axis=1).reshape(ny, nx, f).sum(axis=2, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
-        z = np.where(count > 0, total_ if total else total_ / count, np.nan)
-    return z, (extent[0], extent[0] + nx * cell, extent[3] - ny * cell, extent[3]), cell * f
+        z = np.where(count > 0, sums if total else sums / count, np.nan)
+    return z, (extent[0], extent[0] + nx * f * cell, extent[3] - ny * f * cell, extent[3]), cell * f
+
 
 def crop_to_data(z: np.ndarray, extent: tuple[float, float, float, float], cell: float,
                  mask: np.ndarray | None = None):

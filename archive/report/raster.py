@@ -136,7 +136,7 @@ def map_png(rgba: np.ndarray, extent: tuple[float, float, float, float], scale: 
     if scale is not None:
         _colour_bar(canvas, draw, (x0 + w + pad, y0, h), scale, small, extend)
     buf = io.BytesIO()
-    canvas.save(buf, format="PNG", compress_level=6)
+    canvas.save(buf, format="PNG", compress_level=1)  # level 6 is 2x slower for 6 % less
     return buf.getvalue()
 
 
