@@ -196,7 +196,20 @@ def _maps(shelf_url: str, storage_options: dict | None, st: StationHealth, notes
 
 
 def _draw_maps(cube_url: str, storage_options: dict | None, st: StationHealth, notes: list[str]) -> str:
-    """Latest elevation, point density, change over the last interval and over the record."""
+    """Latest elevation, point density, change over the last interval and over the record.
+
+    The few map-sized reads run on dask's synchronous scheduler, given as a function: named
+    schedulers make dask import its distributed package first (most of a CPU-second), and a
+    thread pool buys nothing for reads done one after another.
+    """
+    import dask
+    from dask.local import get_sync
+
+    with dask.config.set(scheduler=get_sync):
+        return _draw_maps_now(cube_url, storage_options, st, notes)
+
+
+def _draw_maps_now(cube_url: str, storage_options: dict | None, st: StationHealth, notes: list[str]) -> str:
     try:
         spec = read_spec(cube_url, storage_options)
         if spec is None:
