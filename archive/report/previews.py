@@ -29,6 +29,7 @@ def _save(png: bytes, url: str, storage_options: dict | None) -> None:
         f.write(png)
     fs.mv(path + ".tmp", path)
 
+
 def _elevation_of(data, spec: GridSpec | None) -> tuple[np.ndarray, tuple[float, float, float, float], float]:
     """(elevation array north-up, extent (l, r, b, t), cell) from the accepted inputs."""
     if isinstance(data, EpochGrid):
@@ -43,6 +44,7 @@ def _elevation_of(data, spec: GridSpec | None) -> tuple[np.ndarray, tuple[float,
         data = data.isel(time=0)
     return _array_extent(data)
 
+
 def _array_extent(da: xr.DataArray) -> tuple[np.ndarray, tuple[float, float, float, float], float]:
     x, y = da["x"].values, da["y"].values
     cell = float(abs(x[1] - x[0])) if x.size > 1 else 1.0
@@ -51,6 +53,7 @@ def _array_extent(da: xr.DataArray) -> tuple[np.ndarray, tuple[float, float, flo
         values, y = values[::-1], y[::-1]
     half = cell / 2
     return values, (x[0] - half, x[-1] + half, y[-1] - half, y[0] + half), cell
+
 
 MAX_PIXELS = 640  # a preview is a quick look: larger grids are block-averaged to at most this a side
 
@@ -75,16 +78,16 @@ def _block_mean(z: np.ndarray, extent: tuple[float, float, float, float], cell: 
     return z, (extent[0], extent[0] + nx * f * cell, extent[3] - ny * f * cell, extent[3]), cell * f
 
 
-def crop_to_data(z: np.ndarray, extent: tuple[float, float, float, float], cell: float,
-                 mask: np.ndarray | None = None):
-    """The part of ``z`` whose rows and columns hold data (finite values, or ``mask``)."""
-    held = np.isfinite(z) if mask is None else mask
+def crop_to_data(z: np.ndarray, extent: tuple[float, float, float, float], cell: float):
+    """The part of ``z`` whose rows and columns hold data (finite values), and its extent."""
+    held = np.isfinite(z)
     rows, cols = np.flatnonzero(held.any(axis=1)), np.flatnonzero(held.any(axis=0))
     if not rows.size:
         return z, extent
     left, top = extent[0] + cols[0] * cell, extent[3] - rows[0] * cell
     z = z[rows[0] : rows[-1] + 1, cols[0] : cols[-1] + 1]
     return z, (left, left + z.shape[1] * cell, top - z.shape[0] * cell, top)
+
 
 def preview_png(data, spec: GridSpec | None = None, title: str | None = None, units: str = "m",
                 crop: bool = True) -> bytes:
@@ -111,10 +114,12 @@ def preview_png(data, spec: GridSpec | None = None, title: str | None = None, un
     rgba[..., 3] = np.where(valid, 255, 0)
     return map_png(rgba, extent, scale, title=title, units=units)
 
+
 def render_preview(data, path: str, spec: GridSpec | None = None, title: str | None = None,
                    units: str = "m", storage_options: dict | None = None) -> None:
     """Hillshaded elevation of one epoch (EpochGrid + spec, Dataset or DataArray) as a PNG file."""
     _save(preview_png(data, spec, title, units), path, storage_options)
+
 
 def change_png(change, title: str | None = None, crop: bool = False) -> bytes:
     """A change map (ChangeResult or DataArray of metres) with colours centred on zero, as PNG bytes."""
@@ -133,6 +138,7 @@ def change_png(change, title: str | None = None, crop: bool = False) -> bytes:
     if getattr(change, "stable_median", None) is not None:
         note = f"stable area: median {change.stable_median:+.3f} m, NMAD {change.stable_nmad:.3f} m"
     return map_png(colorize(d, scale), extent, scale, title=title, note=note, extend=(True, True))
+
 
 def render_change(change, path: str, title: str | None = None, storage_options: dict | None = None) -> None:
     """A change map (ChangeResult or DataArray of metres) with colours centred on zero, as a PNG file."""
