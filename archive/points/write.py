@@ -27,6 +27,7 @@ from .hilbert import SiteGrid
 from .sort import COORDS, sorted_row_groups
 
 META_KEY = b"scanshelf"
+WRITE_BUFFER = 4 * 2**20  # bytes gathered before they are hashed and written
 
 
 @dataclass(frozen=True)
@@ -110,11 +111,14 @@ def write_scan(
     fs, path = filesystem(dest, storage_options)
     with fs.open(path, "wb") as raw:
         sink = _HashingSink(raw)
+        # the Parquet writer makes thousands of small writes per row group: buffered, the hash and
+        # the file see a few large ones
+        buffered = io.BufferedWriter(sink, buffer_size=WRITE_BUFFER)
         try:
             for table in groups:
                 if writer is None:
                     schema = table.schema.with_metadata(_metadata(metadata, grid, row_group_size, scan_order))
-                    writer = pq.ParquetWriter(sink, schema, **encoding.writer_options(schema))
+                    writer = pq.ParquetWriter(buffered, schema, **encoding.writer_options(schema))
                     stats = {f.name: _Moments() for f in schema if _has_moments(f)}
                 writer.write_table(table, row_group_size=len(table))
                 for name, m in stats.items():
@@ -127,6 +131,7 @@ def write_scan(
             groups.close()  # removes spill files, also on error
             if writer is not None:
                 writer.close()  # on error the caller discards the file; closing keeps `raw` consistent
+            buffered.close()  # flushes into the sink (which leaves `raw` open)
     if writer is None:
         raise ValueError(f"no points to write to {dest}: the scan is empty")
     columns = tuple(_column_info(f, stats.get(f.name)) for f in schema)

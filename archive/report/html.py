@@ -13,7 +13,7 @@ import logging
 import os
 import posixpath
 import uuid
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from urllib.parse import quote, urlsplit
@@ -196,7 +196,20 @@ def _maps(shelf_url: str, storage_options: dict | None, st: StationHealth, notes
 
 
 def _draw_maps(cube_url: str, storage_options: dict | None, st: StationHealth, notes: list[str]) -> str:
-    """Latest elevation, point density, change over the last interval and over the record."""
+    """Latest elevation, point density, change over the last interval and over the record.
+
+    The few map-sized reads run on dask's synchronous scheduler, given as a function: named
+    schedulers make dask import its distributed package first (most of a CPU-second), and a
+    thread pool buys nothing for reads done one after another.
+    """
+    import dask
+    from dask.local import get_sync
+
+    with dask.config.set(scheduler=get_sync):
+        return _draw_maps_now(cube_url, storage_options, st, notes)
+
+
+def _draw_maps_now(cube_url: str, storage_options: dict | None, st: StationHealth, notes: list[str]) -> str:
     try:
         spec = read_spec(cube_url, storage_options)
         if spec is None:
@@ -211,13 +224,15 @@ def _draw_maps(cube_url: str, storage_options: dict | None, st: StationHealth, n
     times = cube["time"].values
     ids = [str(v) for v in cube["scan_id"].values]
     latest = cube.isel(time=-1)
+    elevation = latest["elevation"].load()
+    window = _data_window(elevation)  # every map of the station shows this extent: one scale bar
     figures = [
-        _figure(charts.elevation_map(latest["elevation"].load(), f"elevation, {ids[-1]}"),
+        _figure(charts.elevation_map(elevation.isel(window), f"elevation, {ids[-1]}"),
                 f"Elevation map of scan {ids[-1]}", f"Latest epoch ({_when(_utc(times[-1]))}), hillshaded."),
-        _figure(charts.density_map(latest["point_count"].load(), f"point density, {ids[-1]}"),
+        _figure(charts.density_map(latest["point_count"].isel(window).load(), f"point density, {ids[-1]}"),
                 f"Point density of scan {ids[-1]}",
-                "Points per m² in each grid cell of the latest epoch (log colours). Sparse cells make "
-                "noisy elevations."),
+                "Points per m² in each grid cell of the latest epoch (log colours, 2nd to 98th percentile). "
+                "Sparse cells make noisy elevations."),
     ]
     pairs = []
     if len(times) >= 2:
@@ -230,6 +245,7 @@ def _draw_maps(cube_url: str, storage_options: dict | None, st: StationHealth, n
         except (OSError, ValueError) as exc:
             notes.append(f"station {st.station}: change over the {label} not drawn: {exc}")
             continue
+        change = replace(change, change=change.change.isel(window))
         figures.append(_figure(
             charts.change_map(change, f"elevation change, {label}"),
             f"Elevation change over the {label} at station {st.station}",
@@ -242,6 +258,15 @@ def _draw_maps(cube_url: str, storage_options: dict | None, st: StationHealth, n
     elif len(times) < 2:
         figures.append('<p class="quiet">One epoch: no change to show yet.</p>')
     return '<div class="maps">' + "\n".join(figures) + "</div>"
+
+
+def _data_window(elevation) -> dict[str, slice]:
+    """Rows and columns of the cube that hold data in ``elevation`` (all of it when none do)."""
+    held = np.isfinite(elevation.transpose("y", "x").values)
+    rows, cols = np.flatnonzero(held.any(axis=1)), np.flatnonzero(held.any(axis=0))
+    if not rows.size:
+        return {}
+    return {"y": slice(int(rows[0]), int(rows[-1]) + 1), "x": slice(int(cols[0]), int(cols[-1]) + 1)}
 
 
 def _problem_table(problems: list[Problem], caption: str) -> str:
@@ -395,7 +420,7 @@ h2 .label { font:600 .7rem/1 system-ui, sans-serif; text-transform:uppercase; le
 .where { font-size:.85rem; color:var(--soft); }
 figure { margin:1rem 0; }
 figure img { display:block; max-width:100%; height:auto; border:1px solid var(--rule); background:#fff; }
-figure.wide img { width:100%; }
+figure.wide img, .maps figure img { width:100%; }
 figcaption { font-size:.82rem; color:var(--soft); margin-top:.3rem; max-width:48rem; }
 .maps { display:grid; grid-template-columns:repeat(auto-fit, minmax(30rem, 1fr)); gap:0 1.5rem; }
 .maps > p { grid-column:1 / -1; }

@@ -1,0 +1,120 @@
+"""Map pictures drawn without a figure: the same colours as matplotlib, bars as tall as the map."""
+
+from __future__ import annotations
+
+import io
+
+import matplotlib
+import numpy as np
+import pytest
+import xarray as xr
+from matplotlib.colors import LogNorm, Normalize
+from PIL import Image
+
+from archive.report import charts
+from archive.report.raster import Scale, colorize, map_png
+
+
+@pytest.mark.parametrize("name", ["cividis", "RdBu", "viridis"])
+def test_colours_are_matplotlibs(name):
+    rng = np.random.default_rng(7)
+    values = np.concatenate([rng.uniform(-20, 120, 5000), [0.0, 100.0, -1e9, 1e9, 50.0]])
+    got = colorize(values, Scale(name, 0.0, 100.0))
+    # reference: matplotlib's own colormap and norm, as imshow would colour these values
+    want = matplotlib.colormaps[name](Normalize(0.0, 100.0)(values), bytes=True)
+    np.testing.assert_array_equal(got, want)
+
+
+def test_log_colours_are_matplotlibs_and_nan_is_transparent():
+    rng = np.random.default_rng(3)
+    values = 10 ** rng.uniform(-1, 4, 4000)
+    got = colorize(values, Scale("viridis", 0.5, 2000.0, log=True))
+    want = matplotlib.colormaps["viridis"](LogNorm(0.5, 2000.0)(values), bytes=True)  # reference: matplotlib LogNorm
+    # float rounding of log10 may move a value sitting on a bin edge to the next entry
+    assert (np.abs(got.astype(int) - want.astype(int)).max(axis=1) > 0).mean() < 0.002
+    nan = colorize(np.array([np.nan, 1.0]), Scale("viridis", 0.5, 2000.0, log=True))
+    assert nan[0, 3] == 0 and nan[1, 3] == 255
+
+
+def _decode(png: bytes) -> np.ndarray:
+    with Image.open(io.BytesIO(png)) as im:  # reference: Pillow decodes the PNG
+        assert im.format == "PNG"
+        return np.asarray(im.convert("RGB"))
+
+
+def test_a_uniform_map_shows_its_colour_and_a_bar_as_tall_as_the_map():
+    scale = Scale("viridis", 0.0, 10.0, label="value")
+    grid = np.full((30, 60), 2.5)
+    img = _decode(map_png(colorize(grid, scale), (0.0, 600.0, 0.0, 300.0), scale, title="t"))
+    colour = matplotlib.colormaps["viridis"](Normalize(0, 10)(2.5), bytes=True)[:3]  # reference: matplotlib
+    is_map = np.all(img == colour, axis=2)
+    rows = np.flatnonzero(is_map.sum(axis=1) > 100)  # the bar holds this colour too, in a few pixels
+    cols = np.flatnonzero(is_map.sum(axis=0) > 100)
+    assert cols.size > 500  # the 60 cells were scaled up to fill the picture's width
+    # the colour bar: the column right of the map that runs through the palette, top to bottom
+    lut = [tuple(c) for c in matplotlib.colormaps["viridis"](np.arange(256), bytes=True)[:, :3]]  # reference
+    bar_col = next(c for c in range(cols[-1] + 1, img.shape[1])
+                   if sum(tuple(p) in lut for p in img[:, c]) > 100)
+    bar_rows = np.flatnonzero([tuple(p) in lut for p in img[:, bar_col]])
+    assert tuple(img[bar_rows[0], bar_col]) in lut[-3:] and tuple(img[bar_rows[-1], bar_col]) in lut[:3]
+    # as tall as the map, not taller
+    assert abs(bar_rows[0] - rows[0]) <= 2 and abs(bar_rows[-1] - rows[-1]) <= 2
+
+
+def _grid(values: np.ndarray, name: str) -> xr.DataArray:
+    ny, nx = values.shape
+    return xr.DataArray(values, dims=("y", "x"), name=name,
+                        coords={"x": 500_000.5 + np.arange(nx), "y": 7_650_000.5 + np.arange(ny)[::-1]})
+
+
+def test_density_is_not_a_pale_wash():
+    rng = np.random.default_rng(11)
+    counts = rng.integers(1, 20, size=(80, 120)).astype(float)
+    counts[:3, :3] = 50_000  # a few cells beside the scanner hold most points
+    img = _decode(charts.density_map(_grid(counts, "point_count"), "density"))
+    lut = matplotlib.colormaps["viridis"](np.arange(256), bytes=True)[:, :3].astype(int)  # reference: matplotlib
+    pixels = img.reshape(-1, 3).astype(int)
+    index = np.abs(pixels[:, None, :] - lut[None, ::8, :]).sum(axis=2)
+    on_palette = index.min(axis=1) < 12
+    used = index.argmin(axis=1)[on_palette] * 8
+    # the body of the map spreads over the palette instead of sitting at one end
+    assert on_palette.mean() > 0.5
+    assert 50 < np.median(used) < 206 and used.std() > 40
+
+
+def test_maps_of_the_same_extent_have_the_same_size():
+    rng = np.random.default_rng(5)
+    elevation = _grid(rng.normal(100, 5, size=(50, 70)), "elevation")
+    counts = _grid(rng.integers(1, 9, size=(50, 70)).astype(float), "point_count")
+    a = _decode(charts.elevation_map(elevation, "e"))
+    b = _decode(charts.density_map(counts, "d"))
+    assert a.shape == b.shape
+
+
+def test_coverage_chart_marks_partial_scans_and_shades_gaps():
+    from datetime import datetime, timedelta, timezone
+
+    from archive.report.health import Gap
+
+    day = datetime(2026, 9, 1, 6, tzinfo=timezone.utc)
+    times = [day, day + timedelta(days=1), day + timedelta(days=2), day + timedelta(days=8)]
+    png = charts.coverage_chart(times, [40_000, 30_000, 35_000, 20_000], [False, True, False, False],
+                                [Gap(times[2], times[3])], "north")
+    img = _decode(png).astype(int)
+    assert img.shape == (360, 960, 3)
+    strip = img[45:95]  # the strip of one tick per scan
+
+    def columns_near(rgb, rows):
+        return np.flatnonzero((np.abs(rows - np.array(rgb)).sum(axis=2) < 60).any(axis=0))
+
+    red = columns_near((0xA3, 0x3B, 0x2B), strip)
+    teal = columns_near((0x2F, 0x6F, 0x73), strip)
+    assert red.size and teal.size
+    # reference: a linear time axis by hand: the partial scan (day 1 of 0..8) sits 1/8 of the way along
+    first, last = teal.min(), teal.max()
+    assert abs(red.mean() - (first + (last - first) / 8)) < 4
+    # the gap (third to fourth scan) is shaded; the time between the first two scans is not
+    gap_colour = np.array([0xD9, 0xA4, 0x41]) * 0.35 + 255 * 0.65
+    middle = img[200, int(first + (last - first) * 0.6)]
+    quiet = img[200, int(first + (last - first) * 0.06)]
+    assert np.abs(middle - gap_colour).sum() < 12 and (quiet > 250).all()
