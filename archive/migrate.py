@@ -373,7 +373,7 @@ def _convert(task: ScanTask) -> ScanOutcome:
     axes = reader.header.axes
 
     def feed(table) -> None:
-        binner.add(*(_as_float(table, a, axes[a]) for a in "xyz"))
+        binner.add(*(axes[a].column(table, a) for a in "xyz"))
         crash_point("points.row_group")
 
     metadata = {"scanshelf": _file_metadata(task, reader.header)}
@@ -417,12 +417,6 @@ def _convert(task: ScanTask) -> ScanOutcome:
         extra={"outside_grid": epoch.outside, "point_format": reader.header.point_format, "version": reader.header.version},
     )
     return ScanOutcome(report.relpath, record=record, epoch=epoch, damaged=record.partial)
-
-
-def _as_float(table, axis: str, encoding) -> np.ndarray:
-    from archive.points.coords import units_of
-
-    return encoding.to_float(units_of(table.column(axis)))
 
 
 def _file_metadata(task: ScanTask, header) -> str:

@@ -1,0 +1,116 @@
+"""LAS/LAZ files as other programs write them: any scale and offset, waveform formats, times from
+paths and headers, mixed extents, local frames. Every file is built with laspy (the reference)."""
+
+from __future__ import annotations
+
+from datetime import datetime, timezone
+from pathlib import Path
+
+import duckdb
+import laspy
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pyproj
+import pytest
+
+import archive
+from archive.migrate import migrate
+from archive.points.coords import AxisEncoding
+
+CRS = "EPSG:32633"
+
+
+def _las(path: Path, *, scales, offsets, n: int = 5_000, point_format: int = 6, version: str = "1.4",
+         centre=(500_100.0, 7_650_100.0, 40.0), gps=None, crs: str | None = CRS, seed: int = 0, spread: float = 30.0) -> laspy.LasData:
+    """A laspy-built file; ``gps`` is the first point's adjusted standard GPS time (None: week time)."""
+    rng = np.random.default_rng(seed)
+    header = laspy.LasHeader(point_format=point_format, version=version)
+    header.scales = np.array(scales, dtype=np.float64)
+    header.offsets = np.array(offsets, dtype=np.float64)
+    if gps is not None:
+        header.global_encoding.gps_time_type = laspy.header.GpsTimeType.STANDARD
+    if crs:
+        header.add_crs(pyproj.CRS(crs))
+    las = laspy.LasData(header)
+    las.x = centre[0] + rng.uniform(-spread, spread, n)
+    las.y = centre[1] + rng.uniform(-spread, spread, n)
+    las.z = centre[2] + rng.normal(0, 2, n)
+    las.intensity = rng.integers(0, 65535, n).astype(np.uint16)
+    las.gps_time = (gps if gps is not None else 3 * 86400.0 + 7200.0) + np.arange(n) * 1e-4
+    path.parent.mkdir(parents=True, exist_ok=True)
+    las.write(str(path))
+    return laspy.read(str(path))  # what a reader sees: the stored integers, scaled
+
+
+def _scan_table(shelf: Path, stem: str) -> pa.Table:
+    return pq.read_table(next((shelf / "points").rglob(f"{stem}.parquet")))
+
+
+# --- 1. any scale and offset ------------------------------------------------------------------
+
+SCALES = [
+    ((1.16451354e-06, 1.16451002e-06, 1.00314324e-06), (500_000.352, 7_650_000.596, 7.194653)),
+    ((1.0000000000000002e-06,) * 3, (500_000.0, 7_650_000.0, 0.0)),
+    ((0.0025, 0.0025, 0.0025), (499_999.9975, 7_650_000.0, -3.0)),
+]
+
+
+@pytest.mark.parametrize("scales,offsets", SCALES)
+def test_any_scale_converts_bit_identical_to_laspy(tmp_path, scales, offsets):
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    las = _las(src / "st/scan_20160501_101500.las", scales=scales, offsets=offsets,
+               gps=1.146e9 - 1e9 + 0.5)  # GPS 2016-04-30
+    result = migrate(str(src), str(shelf), previews=False)
+    assert result.failed == [] and len(result.converted) == 1, result.summary()
+    found = archive.open_shelf(str(shelf)).find()
+    got = found.read_points()
+    # reference: laspy's las.x (= X*scale+offset, ASPRS LAS 1.4), bit for bit, every point once
+    want = np.stack([las.x, las.y, las.z, las.gps_time], axis=1)
+    have = np.stack([got[a].to_numpy() for a in ("x", "y", "z", "gps_time")], axis=1)
+    np.testing.assert_array_equal(have[np.lexsort(have.T[::-1])], want[np.lexsort(want.T[::-1])])
+    # the integers come back: round((x - offset)/scale) == X for every point (reference: laspy las.X)
+    stored = _scan_table(shelf, found.scans[0].id if hasattr(found, "scans") else found[0].id)
+    for i, (axis, raw) in enumerate(zip("xyz", ("X", "Y", "Z"))):
+        enc = AxisEncoding.for_las(scales[i], offsets[i])
+        back = np.rint((np.asarray(have[:, i]) - offsets[i]) / scales[i]).astype(np.int64)
+        order_back = np.sort(back)
+        np.testing.assert_array_equal(order_back, np.sort(np.asarray(las.points[raw], dtype=np.int64)))
+        assert stored.schema.field(axis).type == enc.type
+
+
+def test_power_of_ten_scale_stays_decimal_and_odd_scale_is_float(tmp_path):
+    assert pa.types.is_decimal(AxisEncoding.for_las(0.001, 500_000.0).type)
+    assert pa.types.is_decimal(AxisEncoding.for_las(0.0025, 500_000.0).type)
+    assert AxisEncoding.for_las(1.16451354e-06, 1_692_500.352).type == pa.float64()
+    assert AxisEncoding.for_las(1.0000000000000002e-06, 0.0).type == pa.float64()
+
+
+def test_duckdb_sees_real_coordinates_for_odd_scales(tmp_path):
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    las = _las(src / "st/scan_20160501_101500.las", scales=SCALES[0][0], offsets=SCALES[0][1], gps=1.146e9 - 1e9)
+    migrate(str(src), str(shelf), previews=False)
+    path = next((shelf / "points").rglob("*.parquet"))
+    # reference: DuckDB reading the Parquet file as is, against laspy's coordinates
+    lo, hi = duckdb.sql(f"select min(x), max(x) from read_parquet('{path}')").fetchall()[0]
+    assert (lo, hi) == (float(las.x.min()), float(las.x.max()))
+
+
+ODD = 1.0000000000000002e-09  # not a short decimal: a float axis
+
+
+def test_integers_kept_where_float_cannot_give_them_back(tmp_path):
+    # a scale far below the float64 spacing at the offset: distinct X share one float value
+    enc = AxisEncoding.for_las(1e-12, 1e6)
+    assert enc.kind == "float" and enc.raw
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    las = _las(src / "st/scan_20160501_101500.las", scales=(ODD, ODD, 0.001), offsets=(2_500_100.0, 7_650_100.0, 0.0),
+               gps=1.146e9 - 1e9, n=2_000, centre=(2_500_100.0, 7_650_100.0, 40.0), spread=1.0)
+    result = migrate(str(src), str(shelf), previews=False)
+    assert result.failed == [], result.summary()
+    table = _scan_table(shelf, result.converted[0])
+    assert AxisEncoding.for_las(ODD, 2_500_100.0).raw and AxisEncoding.for_las(ODD, 7_650_100.0).raw
+    assert "x_raw" in table.column_names and "z_raw" not in table.column_names
+    # reference: laspy's stored integers X, Y
+    np.testing.assert_array_equal(np.sort(table["x_raw"].to_numpy()), np.sort(np.asarray(las.points["X"])))
+    np.testing.assert_array_equal(np.sort(table["y_raw"].to_numpy()), np.sort(np.asarray(las.points["Y"])))
