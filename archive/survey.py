@@ -54,6 +54,7 @@ class FileReport:
     duplicate_of: str | None = None
     problems: list[str] = field(default_factory=list)
     mtime: float | None = None
+    notes: list[str] = field(default_factory=list)  # worth saying, not damage: waveform not carried, renamed station
 
     @property
     def usable(self) -> bool:
@@ -98,7 +99,7 @@ class SurveyResult:
             ("declared_count", pa.int64()), ("point_count", pa.int64()), ("bounds", pa.list_(pa.float64())),
             ("crs", pa.string()), ("crs_source", pa.string()), ("product", pa.string()), ("size", pa.int64()),
             ("sha256", pa.string()), ("duplicate_of", pa.string()), ("problems", pa.list_(pa.string())),
-            ("columns", pa.list_(pa.string())), ("crs_wkt", pa.string()),
+            ("columns", pa.list_(pa.string())), ("crs_wkt", pa.string()), ("notes", pa.list_(pa.string())),
         ])
         return pa.Table.from_pylist(rows, schema=schema)
 
@@ -123,6 +124,11 @@ class SurveyResult:
         ]
         if stations:
             lines.append("stations: " + ", ".join(f"{s} ({n} files)" for s, n in sorted(stations.items())))
+        noted = [f for f in self.files if f.notes]
+        if noted:
+            lines.append("")
+            lines.append("notes:")
+            lines += [f"  {f.relpath}: {'; '.join(f.notes)}" for f in noted]
         bad = [f for f in self.files if f.status not in ("ok",) and f.kind != "sidecar"]
         if bad:
             lines.append("")
@@ -248,6 +254,7 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, site_file: S
     report.format, report.version, report.point_format = h.format, h.version, h.point_format
     report.declared_count, report.columns = h.declared_count, h.columns
     report.problems.extend(h.problems)
+    report.notes.extend(h.notes)
     if deep:
         try:
             bounds = reader.measure()

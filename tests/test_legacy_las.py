@@ -114,3 +114,68 @@ def test_integers_kept_where_float_cannot_give_them_back(tmp_path):
     # reference: laspy's stored integers X, Y
     np.testing.assert_array_equal(np.sort(table["x_raw"].to_numpy()), np.sort(np.asarray(las.points["X"])))
     np.testing.assert_array_equal(np.sort(table["y_raw"].to_numpy()), np.sort(np.asarray(las.points["Y"])))
+
+
+# --- 2. waveform point formats ----------------------------------------------------------------
+
+WAVE_FIELDS = ("wavepacket_index", "wavepacket_offset", "wavepacket_size", "return_point_wave_location", "x_t", "y_t", "z_t")
+
+
+def _with_wave_packets(path: Path, version: str, samples: bytes) -> None:
+    """Append a waveform data packet record after the points and point the header at it (ASPRS LAS
+    1.3/1.4: global encoding bit 1, start of waveform data packet record at byte 227; in 1.4 the
+    record is the first EVLR, user id LASF_Spec, record id 65535)."""
+    import struct
+
+    data = bytearray(path.read_bytes())
+    start = len(data)
+    evlr = struct.pack("<H16sHQ32s", 0, b"LASF_Spec", 65535, len(samples), b"waveform samples")
+    data += evlr + samples
+    encoding = struct.unpack_from("<H", data, 6)[0] | 0b10
+    struct.pack_into("<H", data, 6, encoding)
+    struct.pack_into("<Q", data, 227, start)
+    if version == "1.4":
+        struct.pack_into("<QI", data, 235, start, 1)
+    path.write_bytes(bytes(data))
+
+
+@pytest.mark.parametrize("point_format,version", [(4, "1.3"), (5, "1.3"), (9, "1.4"), (10, "1.4")])
+def test_waveform_formats_convert_with_descriptors(tmp_path, point_format, version):
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    path = src / "st/scan_20160501_101500.las"
+    _las(path, scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), point_format=point_format,
+         version=version, n=3_000)
+    las = laspy.read(str(path))
+    las.wavepacket_index = np.ones(len(las.points), np.uint8)
+    las.wavepacket_offset = np.arange(len(las.points), dtype=np.uint64) * 64 + 60
+    las.wavepacket_size = np.full(len(las.points), 64, np.uint32)
+    las.return_point_wave_location = np.linspace(0, 100, len(las.points)).astype(np.float32)
+    las.x_t = np.full(len(las.points), 0.25, np.float32)
+    las.write(str(path))
+    _with_wave_packets(path, version, bytes(64 * len(las.points)))
+    las = laspy.read(str(path))  # reference: laspy reads the file with its wave packets
+    result = migrate(str(src), str(shelf), previews=False)
+    assert result.failed == [] and len(result.converted) == 1, result.summary()
+    table = _scan_table(shelf, result.converted[0])
+    order = np.argsort(table["gps_time"].to_numpy())  # gps_time rises through the file
+    for name in WAVE_FIELDS:
+        np.testing.assert_array_equal(table[name].to_numpy()[order], np.asarray(las.points[name]))
+    survey = pq.read_table(shelf / "survey.parquet").to_pylist()[0]
+    assert survey["status"] == "ok"
+    assert any("waveform samples, inside the file" in n and "not carried" in n for n in survey["notes"])
+
+
+def test_external_waveform_file_is_named_and_not_an_unknown_file(tmp_path):
+    src = tmp_path / "src"
+    path = src / "st/scan_20160501_101500.las"
+    _las(path, scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), point_format=9, n=500)
+    las = laspy.read(str(path))
+    las.header.global_encoding.waveform_data_packets_external = True
+    las.write(str(path))
+    (src / "st/scan_20160501_101500.wdp").write_bytes(b"\0" * 128)
+    result = archive.survey(str(src))
+    by_path = {f.relpath: f for f in result.files}
+    assert by_path["st/scan_20160501_101500.las"].status == "ok"
+    assert "external file st/scan_20160501_101500.wdp" in by_path["st/scan_20160501_101500.las"].notes[0]
+    assert by_path["st/scan_20160501_101500.wdp"].kind == "sidecar"
+    assert "not carried" in result.summary()
