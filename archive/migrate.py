@@ -415,6 +415,7 @@ def _convert(task: ScanTask) -> ScanOutcome:
         footprint=outline(_coarse(epoch.point_count > 0, spec), _coarse_transform(spec), spec.crs_wkt) if epoch.inside else None,
         preview_href=preview, grid_href=layout.grid_path(scan.station),
         extra={"outside_grid": epoch.outside, "point_format": reader.header.point_format, "version": reader.header.version},
+        time_source=report.time_source,
     )
     return ScanOutcome(report.relpath, record=record, epoch=epoch, damaged=record.partial)
 

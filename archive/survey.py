@@ -12,7 +12,7 @@ import hashlib
 import re
 from collections import Counter
 from dataclasses import asdict, dataclass, field
-from datetime import datetime
+from datetime import datetime, timedelta, timezone
 from pathlib import PurePosixPath
 from typing import Any, Iterable
 
@@ -20,10 +20,10 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from archive.layout import check_station
-from archive.sitefile import SiteFile, load_site_file
+from archive.sitefile import DEFAULT_TIME, SiteFile, load_site_file
 from archive.sources import SourceError, classify, open_points, scan_time_of
 from archive.storage import filesystem
-from archive.timeutil import parse_stamp
+from archive.timeutil import gps_week_to_utc, parse_stamp, path_time
 
 HASH_BLOCK = 8 << 20
 HEAD_BYTES = 4096
@@ -43,7 +43,7 @@ class FileReport:
     point_format: int | None = None
     station: str | None = None
     scan_time: datetime | None = None
-    time_source: str | None = None  # gps | name
+    time_source: str | None = None  # a key of TIME_SOURCES
     declared_count: int | None = None
     point_count: int | None = None  # points that can be read
     bounds: tuple[float, ...] | None = None  # xmin ymin zmin xmax ymax zmax of the readable points
@@ -197,12 +197,56 @@ def station_of(relpath: str, site_file: SiteFile) -> str:
     return check_station(plain)
 
 
-def stamp_of(relpath: str, site_file: SiteFile) -> datetime | None:
-    """Scan time from the site file's time pattern, tried on the file name first, then the whole path."""
-    for text in (PurePosixPath(relpath).name, relpath):
-        m = re.search(site_file.time_pattern, text)
-        if m and (stamp := parse_stamp(m.group("time"), site_file.zone)) is not None:
-            return stamp
+def stamp_of(relpath: str, site_file: SiteFile) -> tuple[datetime, bool] | None:
+    """Scan time from the path: (time, True) for a date and time, (midnight, False) for a date alone.
+
+    A site file's own [paths] time pattern is tried on the file name, then the whole path; by
+    default any folder or the file name may hold the stamp (see ``timeutil.path_time``).
+    """
+    if site_file.time_pattern != DEFAULT_TIME:
+        for text in (PurePosixPath(relpath).name, relpath):
+            m = re.search(site_file.time_pattern, text)
+            if m and (stamp := parse_stamp(m.group("time"), site_file.zone)) is not None:
+                return stamp, True
+    return path_time(relpath, site_file.zone)
+
+
+# Where a scan's time came from, best first (recorded in the survey, the ledger and the Item).
+TIME_SOURCES = {
+    "gps": "adjusted standard GPS time of the points",
+    "path": "date and time stamp in the file name or a folder",
+    "gps_week": "GPS week time of the points, week taken from the date in the path",
+    "gps_week_header": "GPS week time of the points, week taken from the header's creation date (approximate)",
+    "path_date": "date in the file name or a folder, no time of day (approximate: day precision)",
+    "header_date": "the header's file creation date (approximate: day precision, may be the processing day)",
+    "site_file": "the site file's [times] table",
+}
+
+
+def scan_time(relpath: str, header, tally, site_file: SiteFile) -> tuple[datetime, str] | None:
+    """The scan's time from the best source the file offers, and that source's name (TIME_SOURCES).
+
+    GPS week time needs a date to find its week; a date alone in the path or header is what it
+    refines, so week time resolved by a path date comes before that date itself.
+    """
+    if tally is not None and (time := scan_time_of(header, tally)) is not None:
+        return time, "gps"
+    stamp = stamp_of(relpath, site_file)
+    if stamp is not None and stamp[1]:
+        return stamp[0], "path"
+    week = tally is not None and not header.adjusted_gps_time and tally.min_time is not None and header.format != "ascii"
+    created = header.creation_date
+    if week and stamp is not None:
+        return gps_week_to_utc(tally.min_time, stamp[0] + timedelta(hours=12)), "gps_week"
+    if stamp is not None:
+        return stamp[0], "path_date"
+    if week and created is not None:
+        return gps_week_to_utc(tally.min_time, datetime(created.year, created.month, created.day, 12, tzinfo=timezone.utc)), "gps_week_header"
+    if created is not None:
+        return datetime(created.year, created.month, created.day, tzinfo=timezone.utc), "header_date"
+    given = site_file.time_of(relpath)
+    if given is not None:
+        return given, "site_file"
     return None
 
 
@@ -270,13 +314,9 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, site_file: S
     else:
         report.point_count = h.declared_count
         report.bounds = h.bounds
-    time = scan_time_of(h, reader.tally) if deep else None
-    if time is not None:
-        report.scan_time, report.time_source = time, "gps"
-    else:
-        stamp = stamp_of(relpath, site_file)
-        if stamp is not None:
-            report.scan_time, report.time_source = stamp, "name"
+    found = scan_time(relpath, h, reader.tally if deep else None, site_file)
+    if found is not None:
+        report.scan_time, report.time_source = found
     if h.crs_wkt:
         report.crs_wkt, report.crs_source = h.crs_wkt, "file"
     elif site_file.crs:
@@ -284,8 +324,9 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, site_file: S
     unusable = []
     if report.scan_time is None:
         unusable.append(
-            "no scan time: the points carry no absolute GPS time and the name has no YYYYMMDD_HHMMSS stamp; "
-            "rename the file or set [paths] time in the site file"
+            "no scan time: the points carry no absolute GPS time, no folder or file name holds a date "
+            "(YYYYMMDD_HHMMSS, 2016-05-01, 20160501, 2016/05/01) and the header has no creation date; "
+            f"put the file in a dated folder, or give its time in the site file: [times] \"{relpath}\" = \"2016-05-01T10:00:00Z\""
         )
     if report.crs_wkt is None:
         unusable.append("no CRS in the file; give --crs EPSG:XXXX or [site] crs in the site file")
@@ -314,7 +355,7 @@ def _inspect_grid(fs, path: str, report: FileReport, site_file: SiteFile) -> Fil
     report.crs_source = info.crs_source
     report.bounds = info.bounds
     report.scan_time = info.time
-    report.time_source = "name" if info.time else None
+    report.time_source = "path" if info.time else None
     if report.crs_wkt is None:
         report.status = "unusable"
         report.problems.append("grid has no CRS; set crs in a site file [[grids.files]] rule or give --crs")

@@ -22,8 +22,10 @@ CRS = "EPSG:32633"
 
 
 def _las(path: Path, *, scales, offsets, n: int = 5_000, point_format: int = 6, version: str = "1.4",
-         centre=(500_100.0, 7_650_100.0, 40.0), gps=None, crs: str | None = CRS, seed: int = 0, spread: float = 30.0) -> laspy.LasData:
-    """A laspy-built file; ``gps`` is the first point's adjusted standard GPS time (None: week time)."""
+         centre=(500_100.0, 7_650_100.0, 40.0), gps=None, crs: str | None = CRS, seed: int = 0, spread: float = 30.0, week_seconds: float = 3 * 86400.0 + 7200.0,
+         created=False) -> laspy.LasData:
+    """A laspy-built file; ``gps`` is the first point's adjusted standard GPS time (None: week time,
+    starting at ``week_seconds``); ``created`` a header creation date (None: blank; False: laspy's)."""
     rng = np.random.default_rng(seed)
     header = laspy.LasHeader(point_format=point_format, version=version)
     header.scales = np.array(scales, dtype=np.float64)
@@ -37,10 +39,23 @@ def _las(path: Path, *, scales, offsets, n: int = 5_000, point_format: int = 6, 
     las.y = centre[1] + rng.uniform(-spread, spread, n)
     las.z = centre[2] + rng.normal(0, 2, n)
     las.intensity = rng.integers(0, 65535, n).astype(np.uint16)
-    las.gps_time = (gps if gps is not None else 3 * 86400.0 + 7200.0) + np.arange(n) * 1e-4
+    if "gps_time" in las.point_format.dimension_names:
+        las.gps_time = (gps if gps is not None else week_seconds) + np.arange(n) * 1e-4
     path.parent.mkdir(parents=True, exist_ok=True)
     las.write(str(path))
+    if created is not False:
+        _set_creation_date(path, created)
     return laspy.read(str(path))  # what a reader sees: the stored integers, scaled
+
+
+def _set_creation_date(path: Path, day) -> None:
+    """Header creation day of year (uint16 at byte 90) and year (uint16 at 92), ASPRS LAS 1.2-1.4."""
+    import struct
+
+    data = bytearray(path.read_bytes())
+    doy, year = (day.timetuple().tm_yday, day.year) if day is not None else (0, 0)
+    struct.pack_into("<HH", data, 90, doy, year)
+    path.write_bytes(bytes(data))
 
 
 def _scan_table(shelf: Path, stem: str) -> pa.Table:
@@ -179,3 +194,91 @@ def test_external_waveform_file_is_named_and_not_an_unknown_file(tmp_path):
     assert "external file st/scan_20160501_101500.wdp" in by_path["st/scan_20160501_101500.las"].notes[0]
     assert by_path["st/scan_20160501_101500.wdp"].kind == "sidecar"
     assert "not carried" in result.summary()
+
+
+# --- 3. scan time from what real files carry --------------------------------------------------
+
+def _astropy():
+    pytest.importorskip("astropy")
+    from astropy.time import Time
+    from astropy.utils import iers
+
+    iers.conf.auto_download = False  # the leap-second table shipped with astropy-iers-data; offline
+    return Time
+
+
+LEAP_DAYS = ["1981-07-01", "1982-07-01", "1983-07-01", "1985-07-01", "1988-01-01", "1990-01-01", "1991-01-01",
+             "1992-07-01", "1993-07-01", "1994-07-01", "1996-01-01", "1997-07-01", "1999-01-01", "2006-01-01",
+             "2009-01-01", "2012-07-01", "2015-07-01", "2017-01-01"]
+
+
+def test_gps_to_utc_across_every_leap_second_matches_astropy():
+    from datetime import timedelta
+
+    from archive.timeutil import adjusted_gps_to_utc, gps_minus_utc, utc_to_adjusted_gps
+
+    Time = _astropy()
+    for day in LEAP_DAYS:
+        midnight = datetime.fromisoformat(day).replace(tzinfo=timezone.utc)
+        for shift in (-86400 * 30, -2, -1, 0, 1, 2, 86400 * 30):
+            when = midnight + timedelta(seconds=shift)
+            # reference: astropy.time (UTC -> GPS seconds since 1980-01-06, its own leap-second table)
+            gps = Time(when.strftime("%Y-%m-%dT%H:%M:%S"), scale="utc").gps
+            assert utc_to_adjusted_gps(when) == gps - 1e9, when
+            assert adjusted_gps_to_utc(gps - 1e9) == when, when
+    # a 2012 scan gets the 2012 offset, not today's 18 s (reference: astropy, GPS - UTC = TAI - UTC - 19)
+    may_2012 = Time("2012-05-01T00:00:00", scale="utc")
+    assert gps_minus_utc(datetime(2012, 5, 1, tzinfo=timezone.utc)) == round(
+        (may_2012.tai.mjd - may_2012.utc.mjd) * 86400 - 19) == 15
+
+
+@pytest.mark.parametrize("folder", ["2016-05-01", "20160501", "2016/05/01", "site/2016_05_01"])
+def test_gps_week_time_resolved_with_the_date_of_any_folder(tmp_path, folder):
+    Time = _astropy()
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    # 2016-05-01 is a Sunday; 10:15:00 UTC. GPS week seconds from astropy (reference)
+    when = Time("2016-05-01T10:15:00", scale="utc")
+    week_seconds = when.gps % (7 * 86400)
+    _las(src / "st" / folder / "scan.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0),
+         point_format=1, version="1.2", week_seconds=week_seconds, created=None)
+    result = migrate(str(src), str(shelf), crs=CRS, previews=False)
+    assert result.failed == [] and result.converted == ["st-20160501T101500Z"], result.summary()
+    item = next((shelf / "scans/items").rglob("*.json")).read_text()
+    assert '"scanshelf:time_source": "gps_week"' in item and '"scanshelf:time_approximate": false' in item
+
+
+def test_time_stamp_in_a_folder_and_date_only_paths(tmp_path):
+    src = tmp_path / "src"
+    common = dict(scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), point_format=0, version="1.2", created=None)
+    _las(src / "a/2016-05-01_10-15-00/scan.las", **common)
+    _las(src / "b/2016/05/02/scan.las", **common, seed=1)
+    _las(src / "c/scan.las", **{**common, "created": datetime(2014, 3, 9).date()}, seed=2)
+    _las(src / "d/scan.las", **common, seed=3)
+    files = {f.relpath: f for f in archive.survey(str(src), crs=CRS).files}
+    utc = timezone.utc
+    assert (files["a/2016-05-01_10-15-00/scan.las"].scan_time, files["a/2016-05-01_10-15-00/scan.las"].time_source) == (
+        datetime(2016, 5, 1, 10, 15, tzinfo=utc), "path")
+    assert (files["b/2016/05/02/scan.las"].scan_time, files["b/2016/05/02/scan.las"].time_source) == (
+        datetime(2016, 5, 2, tzinfo=utc), "path_date")
+    assert (files["c/scan.las"].scan_time, files["c/scan.las"].time_source) == (datetime(2014, 3, 9, tzinfo=utc), "header_date")
+    d = files["d/scan.las"]
+    assert d.status == "unusable" and d.scan_time is None
+    assert "[times] \"d/scan.las\" = " in "; ".join(d.problems)
+
+
+def test_week_time_with_only_a_header_date_and_the_site_file_last(tmp_path):
+    from archive.sitefile import parse_site_file
+
+    Time = _astropy()
+    src = tmp_path / "src"
+    when = Time("2014-03-09T16:00:00", scale="utc")  # reference: astropy GPS seconds
+    _las(src / "c/scan.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), point_format=1,
+         version="1.2", week_seconds=when.gps % (7 * 86400), created=datetime(2014, 3, 10).date())
+    _las(src / "d/scan.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), point_format=0,
+         version="1.2", created=None, seed=1)
+    site = parse_site_file({"site": {"crs": CRS, "timezone": "Europe/Oslo"}, "times": {"d/*.las": "2015-06-01T12:00:00"}})
+    files = {f.relpath: f for f in archive.survey(str(src), site).files}
+    assert (files["c/scan.las"].scan_time, files["c/scan.las"].time_source) == (
+        datetime(2014, 3, 9, 16, tzinfo=timezone.utc), "gps_week_header")
+    assert (files["d/scan.las"].scan_time, files["d/scan.las"].time_source) == (
+        datetime(2015, 6, 1, 10, tzinfo=timezone.utc), "site_file")  # 12:00 CEST

@@ -22,6 +22,7 @@ from archive.layout import CATALOG, SCANS_COLLECTION, ScanId, item_path
 from archive.records import ColumnInfo, ScanRecord
 
 SCANS_ID = "scans"
+APPROXIMATE_TIMES = ("gps_week_header", "path_date", "header_date")  # known to the day only
 PARQUET = "application/vnd.apache.parquet"
 ZARR = "application/vnd.zarr; version=3"
 PNG = "image/png"
@@ -206,6 +207,8 @@ def _own_fields(record: ScanRecord) -> dict[str, Any]:
         f"{p}source_format": record.source_format,
         f"{p}row_groups": int(record.row_groups),
         f"{p}partial": bool(record.partial),
+        **({f"{p}time_source": record.time_source,
+            f"{p}time_approximate": record.time_source in APPROXIMATE_TIMES} if record.time_source else {}),
         f"{p}problems": list(record.problems),
     }
     if record.scanner_origin is not None:
