@@ -25,6 +25,7 @@ from archive import layout
 from archive.cluster import DEFAULT_MEMORY_PER_WORKER, DaskExecutor, SerialExecutor
 from archive.faults import crash_point
 from archive.grids import GridAccumulator, GridSpec, EpochGrid, write_epoch
+from archive.grids.spec import MAX_CELLS, overlapping_groups
 from archive.layout import ScanId
 from archive.ledger import Ledger
 from archive.points.hilbert import SiteGrid
@@ -57,13 +58,14 @@ class ScanTask:
     scan_id: str
     shelf: str
     site_grid: dict
-    grid_spec: dict
+    grid_spec: dict | None  # None: converted, not gridded (grid_note says why)
     site_file: SiteFile
     salvage: bool
     chunk_points: int = CHUNK_POINTS
     memory_budget: int = MEMORY_BUDGET
     row_group_points: int = ROW_GROUP_POINTS
     previews: bool = True
+    grid_note: str | None = None
 
 
 @dataclass
@@ -92,6 +94,7 @@ class MigrateResult:
     scans_total: int = 0
     dashboard: str | None = None  # dask dashboard of a cluster run
     retired: list[str] = field(default_factory=list)  # scans replaced because their source file changed
+    ungridded: dict[str, str] = field(default_factory=dict)  # scan id -> why its points were not gridded
 
     @property
     def ok(self) -> bool:
@@ -112,6 +115,9 @@ class MigrateResult:
                 "points outside their station grid (kept in the points archive, not gridded): "
                 + ", ".join(f"{k} {v}" for k, v in outside.items())
             )
+        if self.ungridded:
+            lines.append("converted, not gridded:")
+            lines += [f"  {k}: {v}" for k, v in self.ungridded.items()]
         if self.duplicates:
             lines.append("duplicates (converted once from the original):")
             lines += [f"  {rel}  = {orig}" for rel, orig in self.duplicates]
@@ -200,13 +206,14 @@ def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: Migrat
                 result.skipped_done += 1
                 done_ids.add(scan_id)
                 continue
+            grid_spec, grid_note = _grid_for(report, specs[report.station], site_file)
             tasks.append(
                 ScanTask(
                     source=str(source), storage_options=storage_options or {}, path=join(root, report.relpath),
                     report=report, scan_id=scan_id, shelf=str(shelf_path), site_grid=site_grid.to_dict(),
-                    grid_spec=specs[report.station].to_dict(), site_file=site_file, salvage=salvage,
+                    grid_spec=grid_spec, site_file=site_file, salvage=salvage,
                     chunk_points=chunk_points, memory_budget=memory_budget, row_group_points=row_group_points,
-                    previews=previews,
+                    previews=previews, grid_note=grid_note,
                 )
             )
         bar = progress_bar(progress, total=sum(t.report.point_count or 0 for t in tasks), unit="pt", desc="migrate")
@@ -302,9 +309,16 @@ def _site_grid(ledger: Ledger, usable: list[FileReport], site_file: SiteFile) ->
     return grid
 
 
-def _station_grids(ledger: Ledger, usable: list[FileReport], site_file: SiteFile) -> dict[str, GridSpec]:
-    """One fixed grid per station: the site file's extent, else all its scans' bounds plus a margin."""
-    specs = {k: GridSpec.from_dict(v) for k, v in (ledger.setting("station_grids") or {}).items()}
+def _station_grids(ledger: Ledger, usable: list[FileReport], site_file: SiteFile) -> dict[str, GridSpec | None]:
+    """One fixed grid per station: the site file's extent, else its main group of overlapping scans
+    plus a margin; None for a station whose grid would exceed MAX_CELLS (its points still convert).
+
+    A folder may mix scans from different places or coordinate systems: the grid covers the group
+    of overlapping scans in the station's commonest CRS with the most points; scans away from it
+    are converted but not gridded (``_grid_for`` says why).
+    """
+    stored = ledger.setting("station_grids") or {}
+    specs = {k: (GridSpec.from_dict(v) if v else None) for k, v in stored.items()}
     by_station: dict[str, list[FileReport]] = {}
     for r in usable:
         by_station.setdefault(r.station, []).append(r)
@@ -314,14 +328,36 @@ def _station_grids(ledger: Ledger, usable: list[FileReport], site_file: SiteFile
         crs = Counter(r.crs_wkt for r in reports).most_common(1)[0][0]
         extent = site_file.grid_extent(station)
         if extent is None:
-            b = np.array([r.bounds for r in reports if r.bounds])
-            extent = (b[:, 0].min(), b[:, 1].min(), b[:, 3].max(), b[:, 4].max())
+            mine = [r for r in reports if r.bounds and r.crs_wkt == crs]
+            if not mine:
+                specs[station] = None
+                continue
+            boxes = [(r.bounds[0], r.bounds[1], r.bounds[3], r.bounds[4]) for r in mine]
+            groups = overlapping_groups(boxes, gap=2 * site_file.grid_margin)
+            main = max(groups, key=lambda g: (sum(mine[i].point_count or 0 for i in g), -g[0]))
+            b = np.array([boxes[i] for i in main])
+            extent = (b[:, 0].min(), b[:, 1].min(), b[:, 2].max(), b[:, 3].max())
             margin = site_file.grid_margin
         else:
             margin = 0.0
-        specs[station] = GridSpec.from_bounds(station, extent, site_file.grid_cell, margin, crs)
-    ledger.set_setting("station_grids", {k: v.to_dict() for k, v in specs.items()})
+        spec = GridSpec.from_bounds(station, extent, site_file.grid_cell, margin, crs)
+        specs[station] = spec if spec.cells <= MAX_CELLS else None
+    ledger.set_setting("station_grids", {k: (v.to_dict() if v else None) for k, v in specs.items()})
     return specs
+
+
+def _grid_for(report: FileReport, spec: GridSpec | None, site_file: SiteFile) -> tuple[dict | None, str | None]:
+    """The station grid this scan is binned into, or None and the reason it is not gridded."""
+    if spec is None:
+        return None, (
+            f"not gridded: station {report.station}'s scans would need a grid beyond {MAX_CELLS:,} cells "
+            f"at {site_file.grid_cell} m; set [grids] cell or [grids.extent] in the site file"
+        )
+    if report.crs_wkt != spec.crs_wkt:
+        return None, f"not gridded: its CRS ({report.crs_name}) differs from the station grid's"
+    if report.bounds and not spec.overlaps(report.bounds):
+        return None, f"not gridded: it lies away from station {report.station}'s other scans and grid"
+    return spec.to_dict(), None
 
 
 def _classify_outcome(report: FileReport, ledger: Ledger, result: MigrateResult, salvage: bool) -> None:
@@ -368,12 +404,13 @@ def _convert(task: ScanTask) -> ScanOutcome:
     final = Path(task.shelf) / relative
     final.parent.mkdir(parents=True, exist_ok=True)
     temp = final.with_name(f"{final.name}.part-{uuid.uuid4().hex[:8]}")
-    spec = GridSpec.from_dict(task.grid_spec)
-    binner = GridAccumulator(spec)
+    spec = GridSpec.from_dict(task.grid_spec) if task.grid_spec else None
+    binner = GridAccumulator(spec) if spec else None
     axes = reader.header.axes
 
     def feed(table) -> None:
-        binner.add(*(axes[a].column(table, a) for a in "xyz"))
+        if binner is not None:
+            binner.add(*(axes[a].column(table, a) for a in "xyz"))
         crash_point("points.row_group")
 
     metadata = {"scanshelf": _file_metadata(task, reader.header)}
@@ -389,7 +426,7 @@ def _convert(task: ScanTask) -> ScanOutcome:
     finally:
         if temp.exists():
             temp.unlink()
-    epoch = binner.finish()
+    epoch = binner.finish() if binner is not None else None
     tally = reader.tally
     problems = tuple(dict.fromkeys([*report.problems, *tally.problems]))
     start = report.scan_time
@@ -401,8 +438,9 @@ def _convert(task: ScanTask) -> ScanOutcome:
         else:
             end = start + (adjusted_gps_to_utc(tally.max_time) - adjusted_gps_to_utc(tally.min_time))
     preview = None
-    if task.previews and epoch.inside:
+    if task.previews and epoch is not None and epoch.inside:
         preview = _write_preview(task, spec, epoch, scan)
+    notes = [task.grid_note] if task.grid_note else []
     record = ScanRecord(
         scan_id=task.scan_id, station=scan.station, start=start, end=end, first_point_time=first,
         crs_wkt=report.crs_wkt, crs_code=report.crs_name if report.crs_name and ":" in report.crs_name else None,
@@ -412,9 +450,11 @@ def _convert(task: ScanTask) -> ScanOutcome:
         source_path=report.relpath, source_sha256=report.sha256, source_format=reader.header.format,
         partial=bool(tally.problems) or report.status == "damaged", problems=problems,
         scanner_origin=site_file.station_origin(scan.station),
-        footprint=outline(_coarse(epoch.point_count > 0, spec), _coarse_transform(spec), spec.crs_wkt) if epoch.inside else None,
-        preview_href=preview, grid_href=layout.grid_path(scan.station),
-        extra={"outside_grid": epoch.outside, "point_format": reader.header.point_format, "version": reader.header.version},
+        footprint=(outline(_coarse(epoch.point_count > 0, spec), _coarse_transform(spec), spec.crs_wkt)
+                   if epoch is not None and epoch.inside else None),
+        preview_href=preview, grid_href=layout.grid_path(scan.station) if epoch is not None else None,
+        extra={"outside_grid": epoch.outside if epoch is not None else None, "point_format": reader.header.point_format,
+               "version": reader.header.version, **({"notes": notes} if notes else {})},
         time_source=report.time_source,
     )
     return ScanOutcome(report.relpath, record=record, epoch=epoch, damaged=record.partial)
@@ -486,11 +526,15 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
     if previous and previous.scan_id and previous.scan_id != record.scan_id:
         _retire_scan(Path(task.shelf), ledger, previous.scan_id)
         result.retired.append(previous.scan_id)
-    cube = Path(task.shelf) / layout.grid_path(record.station)
-    _repair_cube(cube)
-    write_epoch(str(cube), GridSpec.from_dict(task.grid_spec), record.start, record.scan_id, outcome.epoch)
-    crash_point("grid.epoch")
-    outputs = (record.points_href, layout.grid_path(record.station)) + ((record.preview_href,) if record.preview_href else ())
+    if outcome.epoch is not None:
+        cube = Path(task.shelf) / layout.grid_path(record.station)
+        _repair_cube(cube)
+        write_epoch(str(cube), GridSpec.from_dict(task.grid_spec), record.start, record.scan_id, outcome.epoch)
+        crash_point("grid.epoch")
+    else:
+        result.ungridded[record.scan_id] = task.grid_note or "not gridded"
+    outputs = ((record.points_href,) + ((layout.grid_path(record.station),) if record.grid_href else ())
+               + ((record.preview_href,) if record.preview_href else ()))
     ledger.record_file(
         report.relpath, status="partial" if record.partial else "done", scan_id=record.scan_id,
         outputs=outputs, scan=record, **common,
@@ -498,7 +542,8 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
     crash_point("ledger.committed")
     result.converted.append(record.scan_id)
     result.points += record.point_count
-    result.outside_grid[record.scan_id] = outcome.epoch.outside
+    if outcome.epoch is not None:
+        result.outside_grid[record.scan_id] = outcome.epoch.outside
     if record.partial:
         result.partial.append(record.scan_id)
 

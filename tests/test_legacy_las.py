@@ -282,3 +282,41 @@ def test_week_time_with_only_a_header_date_and_the_site_file_last(tmp_path):
         datetime(2014, 3, 9, 16, tzinfo=timezone.utc), "gps_week_header")
     assert (files["d/scan.las"].scan_time, files["d/scan.las"].time_source) == (
         datetime(2015, 6, 1, 10, tzinfo=timezone.utc), "site_file")  # 12:00 CEST
+
+
+# --- 4. folders that mix sites ----------------------------------------------------------------
+
+def test_station_folder_mixing_places_and_crs_converts_every_scan(tmp_path):
+    import xarray as xr
+
+    from archive.grids.spec import MAX_CELLS
+
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    common = dict(scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), n=3_000)
+    near_a = _las(src / "st/a_20160501_101500.las", **common, gps=None, seed=1)
+    near_b = _las(src / "st/b_20160502_101500.las", **common, gps=None, seed=2, centre=(500_140.0, 7_650_100.0, 40.0))
+    far = _las(src / "st/c_20160503_101500.las", **common, gps=None, seed=3, centre=(900_100.0, 7_150_100.0, 40.0))
+    other = _las(src / "st/d_20160504_101500.las", scales=(0.01,) * 3, offsets=(0.0, 0.0, 0.0), n=2_000, gps=None,
+                 seed=4, crs="EPSG:25832", centre=(300_000.0, 5_600_000.0, 10.0))
+    result = migrate(str(src), str(shelf), previews=False)
+    assert result.failed == [] and len(result.converted) == 4, result.summary()
+    # reference: laspy's point counts; every scan converted whatever happens to the grid
+    assert result.points == sum(len(l.points) for l in (near_a, near_b, far, other))
+    assert set(result.ungridded) == {"st-20160503T101500Z", "st-20160504T101500Z"}
+    assert "away from station st's other scans" in result.ungridded["st-20160503T101500Z"]
+    assert "CRS" in result.ungridded["st-20160504T101500Z"]
+    assert "converted, not gridded" in result.summary()
+    cube = xr.open_zarr(shelf / "grids/st.zarr", zarr_format=3)
+    assert cube.sizes["time"] == 2 and cube.sizes["x"] * cube.sizes["y"] < 400 * 400 < MAX_CELLS
+
+
+def test_grid_beyond_the_cell_limit_is_skipped_and_points_kept(tmp_path):
+    from archive.sitefile import parse_site_file
+
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    las = _las(src / "st/a_20160501_101500.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), gps=None)
+    site = parse_site_file({"grids": {"cell": 0.01}})  # 60 m at 1 cm: 36 million cells
+    result = migrate(str(src), str(shelf), site, previews=False)
+    assert result.failed == [] and result.points == len(las.points), result.summary()  # reference: laspy count
+    assert "beyond 16,777,216 cells" in result.ungridded["st-20160501T101500Z"]
+    assert not (shelf / "grids/st.zarr").exists()
