@@ -24,6 +24,7 @@ import numpy as np
 from archive import layout
 from archive.cluster import DEFAULT_MEMORY_PER_WORKER, DaskExecutor, SerialExecutor
 from archive.faults import crash_point
+from archive.frames import is_local
 from archive.grids import GridAccumulator, GridSpec, EpochGrid, write_epoch
 from archive.grids.spec import MAX_CELLS, overlapping_groups
 from archive.layout import ScanId
@@ -451,7 +452,7 @@ def _convert(task: ScanTask) -> ScanOutcome:
         partial=bool(tally.problems) or report.status == "damaged", problems=problems,
         scanner_origin=site_file.station_origin(scan.station),
         footprint=(outline(_coarse(epoch.point_count > 0, spec), _coarse_transform(spec), spec.crs_wkt)
-                   if epoch is not None and epoch.inside else None),
+                   if epoch is not None and epoch.inside and not is_local(spec.crs_wkt) else None),
         preview_href=preview, grid_href=layout.grid_path(scan.station) if epoch is not None else None,
         extra={"outside_grid": epoch.outside if epoch is not None else None, "point_format": reader.header.point_format,
                "version": reader.header.version, **({"notes": notes} if notes else {})},

@@ -19,6 +19,7 @@ from typing import Any, Iterable
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from archive.frames import LOCAL_FRAME_WKT, declares_no_crs
 from archive.layout import check_station
 from archive.sitefile import DEFAULT_TIME, SiteFile, load_site_file
 from archive.sources import SourceError, classify, open_points, scan_time_of
@@ -329,7 +330,10 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, site_file: S
             f"put the file in a dated folder, or give its time in the site file: [times] \"{relpath}\" = \"2016-05-01T10:00:00Z\""
         )
     if report.crs_wkt is None:
-        unusable.append("no CRS in the file; give --crs EPSG:XXXX or [site] crs in the site file")
+        unusable.append(
+            "no CRS in the file; give --crs EPSG:XXXX or [site] crs in the site file "
+            "(--crs none if the scans are in a local frame)"
+        )
     if (report.point_count or 0) == 0 and deep:
         unusable.append("no readable points")
     report.problems.extend(unusable)
@@ -370,6 +374,8 @@ def _reason(exc: Exception, relpath: str) -> str:
 def _wkt(crs: str) -> str:
     from pyproj import CRS
 
+    if declares_no_crs(crs):
+        return LOCAL_FRAME_WKT
     return CRS.from_user_input(crs).to_wkt()
 
 

@@ -320,3 +320,30 @@ def test_grid_beyond_the_cell_limit_is_skipped_and_points_kept(tmp_path):
     assert result.failed == [] and result.points == len(las.points), result.summary()  # reference: laspy count
     assert "beyond 16,777,216 cells" in result.ungridded["st-20160501T101500Z"]
     assert not (shelf / "grids/st.zarr").exists()
+
+
+# --- 5. local frames --------------------------------------------------------------------------
+
+def test_local_frame_items_have_null_geometry_and_find_by_bbox_in_the_frame(tmp_path):
+    import json
+
+    import pystac
+    from stac_pydantic import Item
+
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    common = dict(scales=(0.001,) * 3, offsets=(0.0, 0.0, 0.0), crs=None, gps=None, point_format=1, version="1.2")
+    a = _las(src / "st/a_20160501_101500.las", **common, centre=(100.0, 100.0, 5.0), seed=1)
+    _las(src / "st/b_20160502_101500.las", **common, centre=(400.0, 100.0, 5.0), seed=2)
+    result = migrate(str(src), str(shelf), crs="none", previews=False)
+    assert result.failed == [] and len(result.converted) == 2, result.summary()
+    for path in (shelf / "scans/items").rglob("*.json"):
+        item = json.loads(path.read_text())
+        assert item["geometry"] is None and "bbox" not in item
+        Item.model_validate(item)  # reference: stac-pydantic (STAC allows geometry null without bbox)
+        pystac.Item.from_dict(item)  # reference: pystac round trip
+        assert item["properties"]["proj:code"] is None and "ENGCRS" in item["properties"]["proj:wkt2"]
+    found = archive.open_shelf(str(shelf)).find(bbox=(50, 50, 150, 150))
+    assert [s.id for s in found] == ["st-20160501T101500Z"]
+    got = found.read_points()
+    # reference: laspy's coordinates of the file in that frame
+    np.testing.assert_array_equal(np.sort(got["x"].to_numpy()), np.sort(np.asarray(a.x)))
