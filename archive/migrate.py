@@ -35,7 +35,7 @@ from archive.sitefile import SiteFile, load_site_file
 from archive.records import ScanRecord
 from archive.sources import SourceError, open_points
 from archive.storage import filesystem, join
-from archive.survey import FileReport, inspect_file, mark_duplicates, progress_bar, walk_source
+from archive.survey import FileReport, grouped_notes, inspect_file, mark_duplicates, progress_bar, walk_source
 from archive.timeutil import adjusted_gps_to_utc
 
 CHUNK_POINTS = 2_000_000
@@ -96,13 +96,18 @@ class MigrateResult:
     dashboard: str | None = None  # dask dashboard of a cluster run
     retired: list[str] = field(default_factory=list)  # scans replaced because their source file changed
     ungridded: dict[str, str] = field(default_factory=dict)  # scan id -> why its points were not gridded
+    notes: list[str] = field(default_factory=list)  # the survey's notes: renamed stations, waveform not carried
 
     @property
     def ok(self) -> bool:
         return not self.failed and not self.duplicates
 
     def summary(self) -> str:
-        lines = [
+        if not self.scans_total and self.failed:
+            head = [f"no scan converted: {len(self.failed)} files failed, each with its reason below"]
+        else:
+            head = []
+        lines = head + [
             f"shelf {self.shelf}: {self.scans_total} scans in all; this run converted {len(self.converted)} scans "
             f"({self.points:,} points), {self.skipped_done} files were already done",
         ]
@@ -116,6 +121,9 @@ class MigrateResult:
                 "points outside their station grid (kept in the points archive, not gridded): "
                 + ", ".join(f"{k} {v}" for k, v in outside.items())
             )
+        if self.notes:
+            lines.append("notes:")
+            lines += [f"  {n}" for n in self.notes]
         if self.ungridded:
             lines.append("converted, not gridded:")
             lines += [f"  {k}: {v}" for k, v in self.ungridded.items()]
@@ -193,6 +201,7 @@ def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: Migrat
     with Ledger(shelf_path / layout.LEDGER) as ledger:
         reports = _survey(fs, root, site_file, ledger, executor, progress)
         _write_survey(shelf_path, source, reports)
+        result.notes = grouped_notes(reports)
         crash_point("survey.written")
         usable = [r for r in reports if r.kind == "points" and (r.status == "ok" or (salvage and r.status == "damaged"))]
         site_grid = _site_grid(ledger, usable, site_file)
@@ -228,7 +237,7 @@ def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: Migrat
         _ingest_grids(fs, root, reports, site_file, shelf_path, ledger, result, storage_options)
         checksums = ledger.scan_checksums()
         result.scans_total = len(checksums)
-        if catalog:
+        if catalog and checksums:  # no scan converted yet: nothing to catalog; the summary says why
             _write_catalog(shelf_path, checksums, result, site_file, ledger)
             if checksums and _report_stale(shelf_path):
                 from archive.report import write_index_html
@@ -257,7 +266,7 @@ def _survey(fs, root: str, site_file: SiteFile, ledger: Ledger, executor, progre
     ):
         if isinstance(report, BaseException):
             report = FileReport(relpath=relpath, size=size, kind="points", status="unusable", mtime=mtime,
-                                problems=[f"inspection failed twice: {report!r}"])
+                                problems=[f"inspection failed twice on the cluster: {report!r}"])
         reports[report.relpath] = report
         ledger.save_inspection(report.relpath, report.size, report.mtime, _report_to_json(report))
         bar.update(report.size)

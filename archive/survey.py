@@ -24,7 +24,7 @@ from archive.layout import check_station
 from archive.sitefile import DEFAULT_TIME, SiteFile, load_site_file
 from archive.sources import SourceError, classify, open_points, scan_time_of
 from archive.storage import filesystem
-from archive.timeutil import gps_week_to_utc, parse_stamp, path_time
+from archive.timeutil import adjusted_gps_to_utc, gps_week_to_utc, parse_stamp, path_time
 
 HASH_BLOCK = 8 << 20
 HEAD_BYTES = 4096
@@ -125,11 +125,11 @@ class SurveyResult:
         ]
         if stations:
             lines.append("stations: " + ", ".join(f"{s} ({n} files)" for s, n in sorted(stations.items())))
-        noted = [f for f in self.files if f.notes]
-        if noted:
+        notes = grouped_notes(self.files)
+        if notes:
             lines.append("")
             lines.append("notes:")
-            lines += [f"  {f.relpath}: {'; '.join(f.notes)}" for f in noted]
+            lines += [f"  {n}" for n in notes]
         bad = [f for f in self.files if f.status not in ("ok",) and f.kind != "sidecar"]
         if bad:
             lines.append("")
@@ -138,6 +138,16 @@ class SurveyResult:
                 reason = "; ".join(f.problems) or f.status
                 lines.append(f"  [{f.status}] {f.relpath}: {reason}")
         return "\n".join(lines)
+
+
+def grouped_notes(files: Iterable[FileReport]) -> list[str]:
+    """Each distinct note once, with the file it concerns or how many files share it."""
+    by_note: dict[str, list[str]] = {}
+    for f in files:
+        for note in f.notes:
+            by_note.setdefault(note, []).append(f.relpath)
+    return [f"{paths[0]}: {note}" if len(paths) == 1 else f"{len(paths)} files (e.g. {paths[0]}): {note}"
+            for note, paths in by_note.items()]
 
 
 def walk_source(fs, root: str, site_file: SiteFile) -> list[tuple[str, str, int, float | None]]:
@@ -178,6 +188,12 @@ def _match(relpath: str, pattern: str) -> bool:
 
 def _selected(relpath: str, site_file: SiteFile) -> bool:
     return any(_match(relpath, p) for p in site_file.include) and not any(_match(relpath, p) for p in site_file.exclude)
+
+
+def station_folder(relpath: str, site_file: SiteFile) -> str | None:
+    """The part of the path the station pattern picks, before any renaming."""
+    m = re.search(site_file.station_pattern, relpath)
+    return m.group("station") if m and m.group("station") else None
 
 
 def station_of(relpath: str, site_file: SiteFile) -> str:
@@ -224,6 +240,10 @@ TIME_SOURCES = {
 }
 
 
+WEEK_SECONDS = 7 * 86400
+MISLABELLED_WINDOW = timedelta(days=2 * 366)
+
+
 def scan_time(relpath: str, header, tally, site_file: SiteFile) -> tuple[datetime, str] | None:
     """The scan's time from the best source the file offers, and that source's name (TIME_SOURCES).
 
@@ -235,16 +255,22 @@ def scan_time(relpath: str, header, tally, site_file: SiteFile) -> tuple[datetim
     stamp = stamp_of(relpath, site_file)
     if stamp is not None and stamp[1]:
         return stamp[0], "path"
-    week = tally is not None and not header.adjusted_gps_time and tally.min_time is not None and header.format != "ascii"
     created = header.creation_date
-    if week and stamp is not None:
-        return gps_week_to_utc(tally.min_time, stamp[0] + timedelta(hours=12)), "gps_week"
+    day = stamp[0] if stamp is not None else (
+        datetime(created.year, created.month, created.day, tzinfo=timezone.utc) if created else None)
+    lo, hi = (tally.min_time, tally.max_time) if tally is not None and header.format != "ascii" else (None, None)
+    if lo is not None and not header.adjusted_gps_time and day is not None:
+        if 0 <= lo and hi < WEEK_SECONDS and hi > 0:  # all zero: the writer stored no time
+            when = gps_week_to_utc(lo, day + timedelta(hours=12))
+            return when, "gps_week" if stamp is not None else "gps_week_header"
+        if (lo < 0 or lo >= WEEK_SECONDS) and abs(lo) < 2e9 and abs(adjusted_gps_to_utc(lo) - day) < MISLABELLED_WINDOW:
+            # bit 0 clear, yet the times run past a week and read as adjusted standard time near the
+            # file's date: the writer left the bit unset (seen in files of common software)
+            return adjusted_gps_to_utc(lo), "gps"
     if stamp is not None:
         return stamp[0], "path_date"
-    if week and created is not None:
-        return gps_week_to_utc(tally.min_time, datetime(created.year, created.month, created.day, 12, tzinfo=timezone.utc)), "gps_week_header"
     if created is not None:
-        return datetime(created.year, created.month, created.day, tzinfo=timezone.utc), "header_date"
+        return day, "header_date"
     given = site_file.time_of(relpath)
     if given is not None:
         return given, "site_file"
@@ -278,6 +304,11 @@ def inspect_file(fs, path: str, relpath: str, size: int, site_file: SiteFile, *,
         return report
     try:
         report.station = station_of(relpath, site_file)
+        if (folder := station_folder(relpath, site_file)) not in (None, report.station) and not site_file.station_rule(folder):
+            report.notes.append(
+                f"station folder {folder!r} is named {report.station!r} (station ids keep letters, digits, _ and .); "
+                "map it in the site file [stations] to choose another name"
+            )
     except (SourceError, ValueError) as exc:
         report.status = "unusable"
         report.problems.append(_reason(exc, relpath))
@@ -318,6 +349,11 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, site_file: S
     found = scan_time(relpath, h, reader.tally if deep else None, site_file)
     if found is not None:
         report.scan_time, report.time_source = found
+        if report.time_source == "gps" and not h.adjusted_gps_time:
+            report.notes.append(
+                "the header says GPS week time (global encoding bit 0 clear) but the times run past a week "
+                "and match the file's date as adjusted standard GPS time; read as such"
+            )
     if h.crs_wkt:
         report.crs_wkt, report.crs_source = h.crs_wkt, "file"
     elif site_file.crs:

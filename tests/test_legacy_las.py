@@ -347,3 +347,58 @@ def test_local_frame_items_have_null_geometry_and_find_by_bbox_in_the_frame(tmp_
     got = found.read_points()
     # reference: laspy's coordinates of the file in that frame
     np.testing.assert_array_equal(np.sort(got["x"].to_numpy()), np.sort(np.asarray(a.x)))
+
+
+# --- 6. failures are reported -----------------------------------------------------------------
+
+def test_a_run_where_every_file_fails_prints_the_table_and_exits_1(tmp_path):
+    from click.testing import CliRunner
+
+    from archive.cli import cli
+
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    for i in range(2):  # no CRS and no --crs: each file fails for its own reason
+        _las(src / f"st/s{i}_2016050{i + 1}_101500.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), crs=None, seed=i)
+    out = CliRunner().invoke(cli, ["migrate", str(src), str(shelf)])
+    assert out.exit_code == 1, out.output
+    assert "no scans to catalog" not in out.output
+    assert "st/s0_20160501_101500.las: no CRS in the file" in out.output
+    assert "st/s1_20160502_101500.las: no CRS in the file" in out.output
+
+
+def test_serial_run_lets_programming_errors_through_and_data_errors_become_rows(tmp_path, monkeypatch):
+    import importlib
+
+    from archive.sources import SourceError
+
+    m = importlib.import_module("archive.migrate")  # the module; `archive.migrate` is also the function
+
+    src = tmp_path / "src"
+    _las(src / "st/a_20160501_101500.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), gps=None)
+
+    def bug(task):
+        raise TypeError("a bug, not a bad file")
+
+    monkeypatch.setattr(m, "_convert", bug)
+    with pytest.raises(TypeError, match="a bug"):
+        migrate(str(src), str(tmp_path / "shelf1"), previews=False)
+
+    def bad(task):
+        raise SourceError(f"{task.report.relpath}: points unreadable")
+
+    monkeypatch.setattr(m, "_convert", bad)
+    result = migrate(str(src), str(tmp_path / "shelf2"), previews=False)
+    assert result.failed == [("st/a_20160501_101500.las", "points unreadable")]
+    assert "cluster" not in result.summary()
+
+
+def test_unknown_station_names_the_stations_and_renamed_stations_are_noted(tmp_path):
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    _las(src / "north-east/a_20160501_101500.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), gps=None)
+    result = migrate(str(src), str(shelf), previews=False)
+    assert result.converted == ["north_east-20160501T101500Z"]
+    assert any("station folder 'north-east' is named 'north_east'" in n for n in result.notes)
+    survey = pq.read_table(shelf / "survey.parquet").to_pylist()[0]
+    assert any("'north-east' is named 'north_east'" in n for n in survey["notes"])
+    with pytest.raises(ValueError, match="no station 'north-east' on this shelf; its stations are north_east"):
+        archive.open_shelf(str(shelf)).find(station="north-east")
