@@ -402,3 +402,18 @@ def test_unknown_station_names_the_stations_and_renamed_stations_are_noted(tmp_p
     assert any("'north-east' is named 'north_east'" in n for n in survey["notes"])
     with pytest.raises(ValueError, match="no station 'north-east' on this shelf; its stations are north_east"):
         archive.open_shelf(str(shelf)).find(station="north-east")
+
+
+def test_extract_to_las_gives_back_the_integers_of_an_odd_scale(tmp_path):
+    from archive.query.export import extract
+
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    las = _las(src / "st/scan_20160501_101500.las", scales=SCALES[0][0], offsets=SCALES[0][1], gps=1.146e9 - 1e9)
+    migrate(str(src), str(shelf), previews=False)
+    out = tmp_path / "out.las"
+    extract(str(shelf), str(out), (500_000.0, 7_650_000.0, 500_200.0, 7_650_200.0))
+    back = laspy.read(str(out))
+    # reference: laspy reading both files; the extract keeps the source's scale, offset and integers
+    assert tuple(back.header.scales) == SCALES[0][0] and tuple(back.header.offsets) == SCALES[0][1]
+    for raw in ("X", "Y", "Z"):
+        np.testing.assert_array_equal(np.sort(np.asarray(back.points[raw])), np.sort(np.asarray(las.points[raw])))
