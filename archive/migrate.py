@@ -45,6 +45,9 @@ ROW_GROUP_POINTS = 262_144
 # copies being built): whatever of them a killed run left is removed at the start and end of a run
 LEFTOVERS = ("*.part-*", "*.part", ".scanshelf-spill-*", "*.tmp-*", "*.partial")
 WORKER_SORT_SHARE = 0.4  # of a dask worker's memory for the sort; the rest is Arrow buffers and Python
+# bumped when inspection learns new facts (2: time sources, LAS scales, waveform, notes), so that
+# the ledger's cached inspections of unchanged files are redone once
+INSPECTION_VERSION = 2
 FOOTPRINT_CELLS = 256  # the catalog outline is traced on at most this many cells a side
 
 
@@ -256,7 +259,7 @@ def _survey(fs, root: str, site_file: SiteFile, ledger: Ledger, executor, progre
     todo = []
     for path, relpath, size, mtime in entries:
         cached = ledger.inspection(relpath, size, mtime)
-        if cached is not None:
+        if cached is not None and json.loads(cached).get("inspection") == INSPECTION_VERSION:
             reports[relpath] = _report_from_json(cached)
         else:
             todo.append((path, relpath, size, mtime))
@@ -286,13 +289,14 @@ def _inspect_task(args) -> FileReport:
 
 
 def _report_to_json(report: FileReport) -> str:
-    d = asdict(report)
+    d = asdict(report) | {"inspection": INSPECTION_VERSION}
     d["scan_time"] = report.scan_time.isoformat() if report.scan_time else None
     return json.dumps(d)
 
 
 def _report_from_json(text: str) -> FileReport:
     d = json.loads(text)
+    d.pop("inspection", None)
     d["scan_time"] = datetime.fromisoformat(d["scan_time"]) if d["scan_time"] else None
     d["bounds"] = tuple(d["bounds"]) if d["bounds"] else None
     d["columns"] = tuple(d["columns"])

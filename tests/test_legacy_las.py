@@ -107,7 +107,11 @@ def test_duckdb_sees_real_coordinates_for_odd_scales(tmp_path):
     migrate(str(src), str(shelf), previews=False)
     path = next((shelf / "points").rglob("*.parquet"))
     # reference: DuckDB reading the Parquet file as is, against laspy's coordinates
-    lo, hi = duckdb.sql(f"select min(x), max(x) from read_parquet('{path}')").fetchall()[0]
+    con = duckdb.connect()  # its own connection: the module's default one is shared by other tests
+    try:
+        lo, hi = con.sql(f"select min(x), max(x) from read_parquet('{path}')").fetchall()[0]
+    finally:
+        con.close()
     assert (lo, hi) == (float(las.x.min()), float(las.x.max()))
 
 
