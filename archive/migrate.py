@@ -36,7 +36,7 @@ from archive.records import ScanRecord
 from archive.sources import SourceError, open_points
 from archive.storage import filesystem, join
 from archive.survey import FileReport, grouped_notes, inspect_file, mark_duplicates, progress_bar, walk_source
-from archive.timeutil import adjusted_gps_to_utc
+from archive.timeutil import adjusted_gps_to_utc, utc_to_adjusted_gps
 
 CHUNK_POINTS = 2_000_000
 MEMORY_BUDGET = 768 * 2**20
@@ -483,13 +483,23 @@ def _file_metadata(task: ScanTask, header) -> str:
         "station": report.station,
         "crs": CRS.from_wkt(report.crs_wkt).to_json_dict(),
         "axes": {a: enc.to_dict() for a, enc in header.axes.items()},
-        "gps_time": "adjusted standard GPS time (GPS seconds - 1e9)" if header.adjusted_gps_time else "GPS week seconds",
+        "gps_time": _gps_time_meaning(report, header),
         "source": {
             "path": report.relpath, "sha256": report.sha256, "format": header.format,
             "version": header.version, "point_format": header.point_format,
         },
         "partial": task.salvage and report.status == "damaged",
     })
+
+
+def _gps_time_meaning(report: FileReport, header) -> str:
+    """What the gps_time column holds; for week time, the GPS week the scan's time placed it in."""
+    if header.adjusted_gps_time or report.time_source == "gps":
+        return "adjusted standard GPS time (GPS seconds - 1e9)"
+    if report.time_source in ("gps_week", "gps_week_header"):
+        week = int((utc_to_adjusted_gps(report.scan_time) + 1e9) // (7 * 86400))
+        return f"GPS week seconds of GPS week {week} (week from the {'path' if report.time_source == 'gps_week' else 'header'} date)"
+    return "GPS week seconds (week unknown)"
 
 
 def _footprint_factor(spec: GridSpec) -> int:

@@ -421,3 +421,18 @@ def test_extract_to_las_gives_back_the_integers_of_an_odd_scale(tmp_path):
     assert tuple(back.header.scales) == SCALES[0][0] and tuple(back.header.offsets) == SCALES[0][1]
     for raw in ("X", "Y", "Z"):
         np.testing.assert_array_equal(np.sort(np.asarray(back.points[raw])), np.sort(np.asarray(las.points[raw])))
+
+
+def test_week_time_file_names_its_gps_week(tmp_path):
+    import json
+
+    Time = _astropy()
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    when = Time("2016-05-03T08:00:00", scale="utc")
+    _las(src / "st/2016-05-03/scan.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0), point_format=1,
+         version="1.2", week_seconds=when.gps % (7 * 86400), created=None)
+    migrate(str(src), str(shelf), crs=CRS, previews=False)
+    meta = json.loads(pq.read_schema(next((shelf / "points").rglob("*.parquet"))).metadata[b"scanshelf"])
+    # reference: astropy's GPS seconds // one week = GPS week 1895 (2016-05-01 .. 2016-05-07)
+    assert meta["gps_time"].startswith(f"GPS week seconds of GPS week {int(when.gps // (7 * 86400))} ")
+    assert int(when.gps // (7 * 86400)) == 1895
