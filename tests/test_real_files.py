@@ -78,6 +78,8 @@ def test_real_file_times_come_from_the_best_source(real_shelf):
     scans = archive.open_shelf(str(shelf)).find()
     got = {_source_of(s): _item(s)["properties"]["scanshelf:time_source"] for s in scans}
     assert got == TIME_SOURCES
+    approximate = {_source_of(s) for s in scans if _item(s)["properties"]["scanshelf:time_approximate"]}
+    assert approximate == {k for k, v in TIME_SOURCES.items() if v in ("gps_week_header", "header_date")}
 
 
 def _item(scan) -> dict:
