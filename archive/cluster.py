@@ -1,8 +1,10 @@
 """Where tasks run: in this process, or on a dask distributed cluster.
 
-Both executors yield ``(task, result)`` pairs as tasks finish; a task that raised (or whose
-worker died more often than dask's retries allow) yields the exception as its result, so the
-coordinator can record it and carry on with the rest.
+Both executors yield ``(task, result)`` pairs as tasks finish. Tasks report bad input in their
+result (``convert_scan`` never raises for a bad file), so an exception is a fault of the run:
+in this process it propagates with its traceback (a programming error must not pass for a bad
+file); on a cluster a task whose worker died, or that raised, twice (dask retries once) yields
+the exception as its result, so the coordinator can record it and carry on with the rest.
 """
 
 from __future__ import annotations
@@ -16,17 +18,14 @@ DEFAULT_MEMORY_PER_WORKER = int(1.5 * 2**30)
 
 
 class SerialExecutor:
-    """Runs tasks one after another in this process."""
+    """Runs tasks one after another in this process; an exception propagates."""
 
     workers = 1
     dashboard_link: str | None = None
 
     def run(self, fn: Callable, tasks: Iterable) -> Iterator[tuple[Any, Any]]:
         for task in tasks:
-            try:
-                yield task, fn(task)
-            except Exception as exc:  # noqa: BLE001 - reported per task by the caller
-                yield task, exc
+            yield task, fn(task)
 
     def close(self) -> None:
         pass

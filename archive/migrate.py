@@ -24,7 +24,9 @@ import numpy as np
 from archive import layout
 from archive.cluster import DEFAULT_MEMORY_PER_WORKER, DaskExecutor, SerialExecutor
 from archive.crashpoints import crash_point
+from archive.frames import is_local
 from archive.grids import GridAccumulator, GridSpec, EpochGrid, write_epoch
+from archive.grids.spec import MAX_CELLS, overlapping_groups
 from archive.layout import ScanId
 from archive.ledger import Ledger
 from archive.points.hilbert import SiteGrid
@@ -33,8 +35,8 @@ from archive.sitefile import SiteFile, load_site_file
 from archive.records import ScanRecord
 from archive.sources import SourceError, open_points
 from archive.storage import filesystem, join
-from archive.survey import FileReport, inspect_file, mark_duplicates, progress_bar, walk_source
-from archive.timeutil import adjusted_gps_to_utc
+from archive.survey import FileReport, grouped_notes, inspect_file, mark_duplicates, progress_bar, walk_source
+from archive.timeutil import adjusted_gps_to_utc, utc_to_adjusted_gps
 
 CHUNK_POINTS = 2_000_000
 MEMORY_BUDGET = 768 * 2**20
@@ -43,6 +45,9 @@ ROW_GROUP_POINTS = 262_144
 # copies being built): whatever of them a killed run left is removed at the start and end of a run
 LEFTOVERS = ("*.part-*", "*.part", ".scanshelf-spill-*", "*.tmp-*", "*.partial")
 WORKER_SORT_SHARE = 0.4  # of a dask worker's memory for the sort; the rest is Arrow buffers and Python
+# bumped when inspection learns new facts (2: time sources, LAS scales, waveform, notes), so that
+# the ledger's cached inspections of unchanged files are redone once
+INSPECTION_VERSION = 2
 FOOTPRINT_CELLS = 256  # the catalog outline is traced on at most this many cells a side
 
 
@@ -57,13 +62,14 @@ class ScanTask:
     scan_id: str
     shelf: str
     site_grid: dict
-    grid_spec: dict
+    grid_spec: dict | None  # None: converted, not gridded (grid_note says why)
     site_file: SiteFile
     salvage: bool
     chunk_points: int = CHUNK_POINTS
     memory_budget: int = MEMORY_BUDGET
     row_group_points: int = ROW_GROUP_POINTS
     previews: bool = True
+    grid_note: str | None = None
 
 
 @dataclass
@@ -92,13 +98,19 @@ class MigrateResult:
     scans_total: int = 0
     dashboard: str | None = None  # dask dashboard of a cluster run
     retired: list[str] = field(default_factory=list)  # scans replaced because their source file changed
+    ungridded: dict[str, str] = field(default_factory=dict)  # scan id -> why its points were not gridded
+    notes: list[str] = field(default_factory=list)  # the survey's notes: renamed stations, waveform not carried
 
     @property
     def ok(self) -> bool:
         return not self.failed and not self.duplicates
 
     def summary(self) -> str:
-        lines = [
+        if not self.scans_total and self.failed:
+            head = [f"no scan converted: {len(self.failed)} files failed, each with its reason below"]
+        else:
+            head = []
+        lines = head + [
             f"shelf {self.shelf}: {self.scans_total} scans in all; this run converted {len(self.converted)} scans "
             f"({self.points:,} points), {self.skipped_done} files were already done",
         ]
@@ -112,6 +124,12 @@ class MigrateResult:
                 "points outside their station grid (kept in the points archive, not gridded): "
                 + ", ".join(f"{k} {v}" for k, v in outside.items())
             )
+        if self.notes:
+            lines.append("notes:")
+            lines += [f"  {n}" for n in self.notes]
+        if self.ungridded:
+            lines.append("converted, not gridded:")
+            lines += [f"  {k}: {v}" for k, v in self.ungridded.items()]
         if self.duplicates:
             lines.append("duplicates (converted once from the original):")
             lines += [f"  {rel}  = {orig}" for rel, orig in self.duplicates]
@@ -186,6 +204,7 @@ def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: Migrat
     with Ledger(shelf_path / layout.LEDGER) as ledger:
         reports = _survey(fs, root, site_file, ledger, executor, progress)
         _write_survey(shelf_path, source, reports)
+        result.notes = grouped_notes(reports)
         crash_point("survey.written")
         usable = [r for r in reports if r.kind == "points" and (r.status == "ok" or (salvage and r.status == "damaged"))]
         site_grid = _site_grid(ledger, usable, site_file)
@@ -200,13 +219,14 @@ def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: Migrat
                 result.skipped_done += 1
                 done_ids.add(scan_id)
                 continue
+            grid_spec, grid_note = _grid_for(report, specs[report.station], site_file)
             tasks.append(
                 ScanTask(
                     source=str(source), storage_options=storage_options or {}, path=join(root, report.relpath),
                     report=report, scan_id=scan_id, shelf=str(shelf_path), site_grid=site_grid.to_dict(),
-                    grid_spec=specs[report.station].to_dict(), site_file=site_file, salvage=salvage,
+                    grid_spec=grid_spec, site_file=site_file, salvage=salvage,
                     chunk_points=chunk_points, memory_budget=memory_budget, row_group_points=row_group_points,
-                    previews=previews,
+                    previews=previews, grid_note=grid_note,
                 )
             )
         bar = progress_bar(progress, total=sum(t.report.point_count or 0 for t in tasks), unit="pt", desc="migrate")
@@ -220,7 +240,7 @@ def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: Migrat
         _ingest_grids(fs, root, reports, site_file, shelf_path, ledger, result, storage_options)
         checksums = ledger.scan_checksums()
         result.scans_total = len(checksums)
-        if catalog:
+        if catalog and checksums:  # no scan converted yet: nothing to catalog; the summary says why
             _write_catalog(shelf_path, checksums, result, site_file, ledger)
             if checksums and _report_stale(shelf_path):
                 from archive.report import write_index_html
@@ -239,7 +259,7 @@ def _survey(fs, root: str, site_file: SiteFile, ledger: Ledger, executor, progre
     todo = []
     for path, relpath, size, mtime in entries:
         cached = ledger.inspection(relpath, size, mtime)
-        if cached is not None:
+        if cached is not None and json.loads(cached).get("inspection") == INSPECTION_VERSION:
             reports[relpath] = _report_from_json(cached)
         else:
             todo.append((path, relpath, size, mtime))
@@ -249,7 +269,7 @@ def _survey(fs, root: str, site_file: SiteFile, ledger: Ledger, executor, progre
     ):
         if isinstance(report, BaseException):
             report = FileReport(relpath=relpath, size=size, kind="points", status="unusable", mtime=mtime,
-                                problems=[f"inspection failed twice: {report!r}"])
+                                problems=[f"inspection failed twice on the cluster: {report!r}"])
         reports[report.relpath] = report
         ledger.save_inspection(report.relpath, report.size, report.mtime, _report_to_json(report))
         bar.update(report.size)
@@ -269,13 +289,14 @@ def _inspect_task(args) -> FileReport:
 
 
 def _report_to_json(report: FileReport) -> str:
-    d = asdict(report)
+    d = asdict(report) | {"inspection": INSPECTION_VERSION}
     d["scan_time"] = report.scan_time.isoformat() if report.scan_time else None
     return json.dumps(d)
 
 
 def _report_from_json(text: str) -> FileReport:
     d = json.loads(text)
+    d.pop("inspection", None)
     d["scan_time"] = datetime.fromisoformat(d["scan_time"]) if d["scan_time"] else None
     d["bounds"] = tuple(d["bounds"]) if d["bounds"] else None
     d["columns"] = tuple(d["columns"])
@@ -302,9 +323,16 @@ def _site_grid(ledger: Ledger, usable: list[FileReport], site_file: SiteFile) ->
     return grid
 
 
-def _station_grids(ledger: Ledger, usable: list[FileReport], site_file: SiteFile) -> dict[str, GridSpec]:
-    """One fixed grid per station: the site file's extent, else all its scans' bounds plus a margin."""
-    specs = {k: GridSpec.from_dict(v) for k, v in (ledger.setting("station_grids") or {}).items()}
+def _station_grids(ledger: Ledger, usable: list[FileReport], site_file: SiteFile) -> dict[str, GridSpec | None]:
+    """One fixed grid per station: the site file's extent, else its main group of overlapping scans
+    plus a margin; None for a station whose grid would exceed MAX_CELLS (its points still convert).
+
+    A folder may mix scans from different places or coordinate systems: the grid covers the group
+    of overlapping scans in the station's commonest CRS with the most points; scans away from it
+    are converted but not gridded (``_grid_for`` says why).
+    """
+    stored = ledger.setting("station_grids") or {}
+    specs = {k: (GridSpec.from_dict(v) if v else None) for k, v in stored.items()}
     by_station: dict[str, list[FileReport]] = {}
     for r in usable:
         by_station.setdefault(r.station, []).append(r)
@@ -314,14 +342,36 @@ def _station_grids(ledger: Ledger, usable: list[FileReport], site_file: SiteFile
         crs = Counter(r.crs_wkt for r in reports).most_common(1)[0][0]
         extent = site_file.grid_extent(station)
         if extent is None:
-            b = np.array([r.bounds for r in reports if r.bounds])
-            extent = (b[:, 0].min(), b[:, 1].min(), b[:, 3].max(), b[:, 4].max())
+            mine = [r for r in reports if r.bounds and r.crs_wkt == crs]
+            if not mine:
+                specs[station] = None
+                continue
+            boxes = [(r.bounds[0], r.bounds[1], r.bounds[3], r.bounds[4]) for r in mine]
+            groups = overlapping_groups(boxes, gap=2 * site_file.grid_margin)
+            main = max(groups, key=lambda g: (sum(mine[i].point_count or 0 for i in g), -g[0]))
+            b = np.array([boxes[i] for i in main])
+            extent = (b[:, 0].min(), b[:, 1].min(), b[:, 2].max(), b[:, 3].max())
             margin = site_file.grid_margin
         else:
             margin = 0.0
-        specs[station] = GridSpec.from_bounds(station, extent, site_file.grid_cell, margin, crs)
-    ledger.set_setting("station_grids", {k: v.to_dict() for k, v in specs.items()})
+        spec = GridSpec.from_bounds(station, extent, site_file.grid_cell, margin, crs)
+        specs[station] = spec if spec.cells <= MAX_CELLS else None
+    ledger.set_setting("station_grids", {k: (v.to_dict() if v else None) for k, v in specs.items()})
     return specs
+
+
+def _grid_for(report: FileReport, spec: GridSpec | None, site_file: SiteFile) -> tuple[dict | None, str | None]:
+    """The station grid this scan is binned into, or None and the reason it is not gridded."""
+    if spec is None:
+        return None, (
+            f"not gridded: station {report.station}'s scans would need a grid beyond {MAX_CELLS:,} cells "
+            f"at {site_file.grid_cell} m; set [grids] cell or [grids.extent] in the site file"
+        )
+    if report.crs_wkt != spec.crs_wkt:
+        return None, f"not gridded: its CRS ({report.crs_name}) differs from the station grid's"
+    if report.bounds and not spec.overlaps(report.bounds):
+        return None, f"not gridded: it lies away from station {report.station}'s other scans and grid"
+    return spec.to_dict(), None
 
 
 def _classify_outcome(report: FileReport, ledger: Ledger, result: MigrateResult, salvage: bool) -> None:
@@ -368,12 +418,13 @@ def _convert(task: ScanTask) -> ScanOutcome:
     final = Path(task.shelf) / relative
     final.parent.mkdir(parents=True, exist_ok=True)
     temp = final.with_name(f"{final.name}.part-{uuid.uuid4().hex[:8]}")
-    spec = GridSpec.from_dict(task.grid_spec)
-    binner = GridAccumulator(spec)
+    spec = GridSpec.from_dict(task.grid_spec) if task.grid_spec else None
+    binner = GridAccumulator(spec) if spec else None
     axes = reader.header.axes
 
     def feed(table) -> None:
-        binner.add(*(_as_float(table, a, axes[a]) for a in "xyz"))
+        if binner is not None:
+            binner.add(*(axes[a].column(table, a) for a in "xyz"))
         crash_point("points.row_group")
 
     metadata = {"scanshelf": _file_metadata(task, reader.header)}
@@ -389,7 +440,7 @@ def _convert(task: ScanTask) -> ScanOutcome:
     finally:
         if temp.exists():
             temp.unlink()
-    epoch = binner.finish()
+    epoch = binner.finish() if binner is not None else None
     tally = reader.tally
     problems = tuple(dict.fromkeys([*report.problems, *tally.problems]))
     start = report.scan_time
@@ -401,8 +452,9 @@ def _convert(task: ScanTask) -> ScanOutcome:
         else:
             end = start + (adjusted_gps_to_utc(tally.max_time) - adjusted_gps_to_utc(tally.min_time))
     preview = None
-    if task.previews and epoch.inside:
+    if task.previews and epoch is not None and epoch.inside:
         preview = _write_preview(task, spec, epoch, scan)
+    notes = [task.grid_note] if task.grid_note else []
     record = ScanRecord(
         scan_id=task.scan_id, station=scan.station, start=start, end=end, first_point_time=first,
         crs_wkt=report.crs_wkt, crs_code=report.crs_name if report.crs_name and ":" in report.crs_name else None,
@@ -412,17 +464,14 @@ def _convert(task: ScanTask) -> ScanOutcome:
         source_path=report.relpath, source_sha256=report.sha256, source_format=reader.header.format,
         partial=bool(tally.problems) or report.status == "damaged", problems=problems,
         scanner_origin=site_file.station_origin(scan.station),
-        footprint=outline(_coarse(epoch.point_count > 0, spec), _coarse_transform(spec), spec.crs_wkt) if epoch.inside else None,
-        preview_href=preview, grid_href=layout.grid_path(scan.station),
-        extra={"outside_grid": epoch.outside, "point_format": reader.header.point_format, "version": reader.header.version},
+        footprint=(outline(_coarse(epoch.point_count > 0, spec), _coarse_transform(spec), spec.crs_wkt)
+                   if epoch is not None and epoch.inside and not is_local(spec.crs_wkt) else None),
+        preview_href=preview, grid_href=layout.grid_path(scan.station) if epoch is not None else None,
+        extra={"outside_grid": epoch.outside if epoch is not None else None, "point_format": reader.header.point_format,
+               "version": reader.header.version, **({"notes": notes} if notes else {})},
+        time_source=report.time_source,
     )
     return ScanOutcome(report.relpath, record=record, epoch=epoch, damaged=record.partial)
-
-
-def _as_float(table, axis: str, encoding) -> np.ndarray:
-    from archive.points.coords import units_of
-
-    return encoding.to_float(units_of(table.column(axis)))
 
 
 def _file_metadata(task: ScanTask, header) -> str:
@@ -434,13 +483,23 @@ def _file_metadata(task: ScanTask, header) -> str:
         "station": report.station,
         "crs": CRS.from_wkt(report.crs_wkt).to_json_dict(),
         "axes": {a: enc.to_dict() for a, enc in header.axes.items()},
-        "gps_time": "adjusted standard GPS time (GPS seconds - 1e9)" if header.adjusted_gps_time else "GPS week seconds",
+        "gps_time": _gps_time_meaning(report, header),
         "source": {
             "path": report.relpath, "sha256": report.sha256, "format": header.format,
             "version": header.version, "point_format": header.point_format,
         },
         "partial": task.salvage and report.status == "damaged",
     })
+
+
+def _gps_time_meaning(report: FileReport, header) -> str:
+    """What the gps_time column holds; for week time, the GPS week the scan's time placed it in."""
+    if header.adjusted_gps_time or report.time_source == "gps":
+        return "adjusted standard GPS time (GPS seconds - 1e9)"
+    if report.time_source in ("gps_week", "gps_week_header"):
+        week = int((utc_to_adjusted_gps(report.scan_time) + 1e9) // (7 * 86400))
+        return f"GPS week seconds of GPS week {week} (week from the {'path' if report.time_source == 'gps_week' else 'header'} date)"
+    return "GPS week seconds (week unknown)"
 
 
 def _footprint_factor(spec: GridSpec) -> int:
@@ -491,11 +550,15 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
     if previous and previous.scan_id and previous.scan_id != record.scan_id:
         _retire_scan(Path(task.shelf), ledger, previous.scan_id)
         result.retired.append(previous.scan_id)
-    cube = Path(task.shelf) / layout.grid_path(record.station)
-    _repair_cube(cube)
-    write_epoch(str(cube), GridSpec.from_dict(task.grid_spec), record.start, record.scan_id, outcome.epoch)
-    crash_point("grid.epoch")
-    outputs = (record.points_href, layout.grid_path(record.station)) + ((record.preview_href,) if record.preview_href else ())
+    if outcome.epoch is not None:
+        cube = Path(task.shelf) / layout.grid_path(record.station)
+        _repair_cube(cube)
+        write_epoch(str(cube), GridSpec.from_dict(task.grid_spec), record.start, record.scan_id, outcome.epoch)
+        crash_point("grid.epoch")
+    else:
+        result.ungridded[record.scan_id] = task.grid_note or "not gridded"
+    outputs = ((record.points_href,) + ((layout.grid_path(record.station),) if record.grid_href else ())
+               + ((record.preview_href,) if record.preview_href else ()))
     ledger.record_file(
         report.relpath, status="partial" if record.partial else "done", scan_id=record.scan_id,
         outputs=outputs, scan=record, **common,
@@ -503,7 +566,8 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
     crash_point("ledger.committed")
     result.converted.append(record.scan_id)
     result.points += record.point_count
-    result.outside_grid[record.scan_id] = outcome.epoch.outside
+    if outcome.epoch is not None:
+        result.outside_grid[record.scan_id] = outcome.epoch.outside
     if record.partial:
         result.partial.append(record.scan_id)
 

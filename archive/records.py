@@ -52,6 +52,7 @@ class ScanRecord:
     preview_href: str | None = None  # shelf-relative PNG, if written
     grid_href: str | None = None  # shelf-relative station cube holding this scan's time step
     extra: dict = field(default_factory=dict)
+    time_source: str | None = None  # survey.TIME_SOURCES key: where `start` came from
 
     @property
     def duration_seconds(self) -> float:

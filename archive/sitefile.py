@@ -58,6 +58,7 @@ class SiteFile:
     grid_extents: tuple[tuple[str, tuple[float, float, float, float]], ...] = ()
     grid_files: tuple[GridFileRule, ...] = ()
     catalog: dict[str, Any] = field(default_factory=dict, hash=False, compare=False)
+    times: tuple[tuple[str, str], ...] = ()  # [times]: path glob → ISO time, the last resort for a scan's time
     path: str | None = None  # where it was loaded from, for messages
 
     @property
@@ -79,6 +80,17 @@ class SiteFile:
 
     def grid_rule(self, relpath: str) -> GridFileRule | None:
         return next((r for r in self.grid_files if re.search(r.pattern, relpath)), None)
+
+    def time_of(self, relpath: str):
+        """The [times] entry whose glob matches ``relpath`` (naive times are in the site's zone), or None."""
+        import fnmatch
+
+        from archive.timeutil import parse_time
+
+        for pattern, value in self.times:
+            if fnmatch.fnmatchcase(relpath, pattern):
+                return parse_time(value, self.zone)
+        return None
 
     def with_crs(self, crs: str | None) -> "SiteFile":
         """A command-line --crs overrides the site file's site CRS."""
@@ -103,7 +115,7 @@ def parse_site_file(data: dict[str, Any], where: str = "<site_file>") -> SiteFil
     def fail(field_name: str, why: str) -> SiteFileError:
         return SiteFileError(f"site file {where}: [{field_name}] {why}")
 
-    known = {"version", "site", "paths", "stations", "ascii", "attributes", "grids", "catalog"}
+    known = {"version", "site", "paths", "stations", "ascii", "attributes", "grids", "catalog", "times"}
     unknown = set(data) - known
     if unknown:
         raise fail(", ".join(sorted(unknown)), f"is not a site file section; known: {', '.join(sorted(known))}")
@@ -157,7 +169,18 @@ def parse_site_file(data: dict[str, Any], where: str = "<site_file>") -> SiteFil
     if cell <= 0:
         raise fail("grids.cell", "must be a positive number of metres")
 
+    times = []
+    for pattern, value in _table(data, "times", fail).items():
+        from archive.timeutil import parse_time
+
+        try:
+            parse_time(value if isinstance(value, str) else value.isoformat())
+        except (ValueError, TypeError, AttributeError):
+            raise fail(f"times.{pattern}", f"{value!r} is not a time such as \"2016-05-01T10:00:00Z\"") from None
+        times.append((str(pattern), value if isinstance(value, str) else value.isoformat()))
+
     return SiteFile(
+        times=tuple(times),
         crs=site.get("crs"),
         timezone=timezone,
         station_pattern=station_pattern,

@@ -12,18 +12,19 @@ import hashlib
 import re
 from collections import Counter
 from dataclasses import asdict, dataclass, field
-from datetime import datetime
+from datetime import datetime, timedelta, timezone
 from pathlib import PurePosixPath
 from typing import Any, Iterable
 
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from archive.frames import LOCAL_FRAME_WKT, declares_no_crs
 from archive.layout import check_station
-from archive.sitefile import SiteFile, load_site_file
+from archive.sitefile import DEFAULT_TIME, SiteFile, load_site_file
 from archive.sources import SourceError, classify, open_points, scan_time_of
 from archive.storage import filesystem
-from archive.timeutil import parse_stamp
+from archive.timeutil import adjusted_gps_to_utc, gps_week_to_utc, parse_stamp, path_time
 
 HASH_BLOCK = 8 << 20
 HEAD_BYTES = 4096
@@ -43,7 +44,7 @@ class FileReport:
     point_format: int | None = None
     station: str | None = None
     scan_time: datetime | None = None
-    time_source: str | None = None  # gps | name
+    time_source: str | None = None  # a key of TIME_SOURCES
     declared_count: int | None = None
     point_count: int | None = None  # points that can be read
     bounds: tuple[float, ...] | None = None  # xmin ymin zmin xmax ymax zmax of the readable points
@@ -54,6 +55,7 @@ class FileReport:
     duplicate_of: str | None = None
     problems: list[str] = field(default_factory=list)
     mtime: float | None = None
+    notes: list[str] = field(default_factory=list)  # worth saying, not damage: waveform not carried, renamed station
 
     @property
     def usable(self) -> bool:
@@ -98,7 +100,7 @@ class SurveyResult:
             ("declared_count", pa.int64()), ("point_count", pa.int64()), ("bounds", pa.list_(pa.float64())),
             ("crs", pa.string()), ("crs_source", pa.string()), ("product", pa.string()), ("size", pa.int64()),
             ("sha256", pa.string()), ("duplicate_of", pa.string()), ("problems", pa.list_(pa.string())),
-            ("columns", pa.list_(pa.string())), ("crs_wkt", pa.string()),
+            ("columns", pa.list_(pa.string())), ("crs_wkt", pa.string()), ("notes", pa.list_(pa.string())),
         ])
         return pa.Table.from_pylist(rows, schema=schema)
 
@@ -123,6 +125,11 @@ class SurveyResult:
         ]
         if stations:
             lines.append("stations: " + ", ".join(f"{s} ({n} files)" for s, n in sorted(stations.items())))
+        notes = grouped_notes(self.files)
+        if notes:
+            lines.append("")
+            lines.append("notes:")
+            lines += [f"  {n}" for n in notes]
         bad = [f for f in self.files if f.status not in ("ok",) and f.kind != "sidecar"]
         if bad:
             lines.append("")
@@ -131,6 +138,16 @@ class SurveyResult:
                 reason = "; ".join(f.problems) or f.status
                 lines.append(f"  [{f.status}] {f.relpath}: {reason}")
         return "\n".join(lines)
+
+
+def grouped_notes(files: Iterable[FileReport]) -> list[str]:
+    """Each distinct note once, with the file it concerns or how many files share it."""
+    by_note: dict[str, list[str]] = {}
+    for f in files:
+        for note in f.notes:
+            by_note.setdefault(note, []).append(f.relpath)
+    return [f"{paths[0]}: {note}" if len(paths) == 1 else f"{len(paths)} files (e.g. {paths[0]}): {note}"
+            for note, paths in by_note.items()]
 
 
 def walk_source(fs, root: str, site_file: SiteFile) -> list[tuple[str, str, int, float | None]]:
@@ -173,6 +190,12 @@ def _selected(relpath: str, site_file: SiteFile) -> bool:
     return any(_match(relpath, p) for p in site_file.include) and not any(_match(relpath, p) for p in site_file.exclude)
 
 
+def station_folder(relpath: str, site_file: SiteFile) -> str | None:
+    """The part of the path the station pattern picks, before any renaming."""
+    m = re.search(site_file.station_pattern, relpath)
+    return m.group("station") if m and m.group("station") else None
+
+
 def station_of(relpath: str, site_file: SiteFile) -> str:
     """Station id from the path: the site file's pattern (default: the first folder), renamed by [stations]."""
     m = re.search(site_file.station_pattern, relpath)
@@ -191,12 +214,66 @@ def station_of(relpath: str, site_file: SiteFile) -> str:
     return check_station(plain)
 
 
-def stamp_of(relpath: str, site_file: SiteFile) -> datetime | None:
-    """Scan time from the site file's time pattern, tried on the file name first, then the whole path."""
-    for text in (PurePosixPath(relpath).name, relpath):
-        m = re.search(site_file.time_pattern, text)
-        if m and (stamp := parse_stamp(m.group("time"), site_file.zone)) is not None:
-            return stamp
+def stamp_of(relpath: str, site_file: SiteFile) -> tuple[datetime, bool] | None:
+    """Scan time from the path: (time, True) for a date and time, (midnight, False) for a date alone.
+
+    A site file's own [paths] time pattern is tried on the file name, then the whole path; by
+    default any folder or the file name may hold the stamp (see ``timeutil.path_time``).
+    """
+    if site_file.time_pattern != DEFAULT_TIME:
+        for text in (PurePosixPath(relpath).name, relpath):
+            m = re.search(site_file.time_pattern, text)
+            if m and (stamp := parse_stamp(m.group("time"), site_file.zone)) is not None:
+                return stamp, True
+    return path_time(relpath, site_file.zone)
+
+
+# Where a scan's time came from, best first (recorded in the survey, the ledger and the Item).
+TIME_SOURCES = {
+    "gps": "adjusted standard GPS time of the points",
+    "path": "date and time stamp in the file name or a folder",
+    "gps_week": "GPS week time of the points, week taken from the date in the path",
+    "gps_week_header": "GPS week time of the points, week taken from the header's creation date (approximate)",
+    "path_date": "date in the file name or a folder, no time of day (approximate: day precision)",
+    "header_date": "the header's file creation date (approximate: day precision, may be the processing day)",
+    "site_file": "the site file's [times] table",
+}
+
+
+WEEK_SECONDS = 7 * 86400
+MISLABELLED_WINDOW = timedelta(days=2 * 366)
+
+
+def scan_time(relpath: str, header, tally, site_file: SiteFile) -> tuple[datetime, str] | None:
+    """The scan's time from the best source the file offers, and that source's name (TIME_SOURCES).
+
+    GPS week time needs a date to find its week; a date alone in the path or header is what it
+    refines, so week time resolved by a path date comes before that date itself.
+    """
+    if tally is not None and (time := scan_time_of(header, tally)) is not None:
+        return time, "gps"
+    stamp = stamp_of(relpath, site_file)
+    if stamp is not None and stamp[1]:
+        return stamp[0], "path"
+    created = header.creation_date
+    day = stamp[0] if stamp is not None else (
+        datetime(created.year, created.month, created.day, tzinfo=timezone.utc) if created else None)
+    lo, hi = (tally.min_time, tally.max_time) if tally is not None and header.format != "ascii" else (None, None)
+    if lo is not None and not header.adjusted_gps_time and day is not None:
+        if 0 <= lo and hi < WEEK_SECONDS and hi > 0:  # all zero: the writer stored no time
+            when = gps_week_to_utc(lo, day + timedelta(hours=12))
+            return when, "gps_week" if stamp is not None else "gps_week_header"
+        if (lo < 0 or lo >= WEEK_SECONDS) and abs(lo) < 2e9 and abs(adjusted_gps_to_utc(lo) - day) < MISLABELLED_WINDOW:
+            # bit 0 clear, yet the times run past a week and read as adjusted standard time near the
+            # file's date: the writer left the bit unset (seen in files of common software)
+            return adjusted_gps_to_utc(lo), "gps"
+    if stamp is not None:
+        return stamp[0], "path_date"
+    if created is not None:
+        return day, "header_date"
+    given = site_file.time_of(relpath)
+    if given is not None:
+        return given, "site_file"
     return None
 
 
@@ -228,6 +305,11 @@ def inspect_file(fs, path: str, relpath: str, size: int, site_file: SiteFile, *,
     try:
         rule = site_file.grid_rule(relpath) if report.kind == "grid" else None  # a [[grids.files]] station wins
         report.station = check_station(rule.station) if rule and rule.station else station_of(relpath, site_file)
+        if (folder := station_folder(relpath, site_file)) not in (None, report.station) and not site_file.station_rule(folder):
+            report.notes.append(
+                f"station folder {folder!r} is named {report.station!r} (station ids keep letters, digits, _ and .); "
+                "map it in the site file [stations] to choose another name"
+            )
     except (SourceError, ValueError) as exc:
         report.status = "unusable"
         report.problems.append(_reason(exc, relpath))
@@ -249,6 +331,7 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, site_file: S
     report.format, report.version, report.point_format = h.format, h.version, h.point_format
     report.declared_count, report.columns = h.declared_count, h.columns
     report.problems.extend(h.problems)
+    report.notes.extend(h.notes)
     if deep:
         try:
             bounds = reader.measure()
@@ -264,13 +347,14 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, site_file: S
     else:
         report.point_count = h.declared_count
         report.bounds = h.bounds
-    time = scan_time_of(h, reader.tally) if deep else None
-    if time is not None:
-        report.scan_time, report.time_source = time, "gps"
-    else:
-        stamp = stamp_of(relpath, site_file)
-        if stamp is not None:
-            report.scan_time, report.time_source = stamp, "name"
+    found = scan_time(relpath, h, reader.tally if deep else None, site_file)
+    if found is not None:
+        report.scan_time, report.time_source = found
+        if report.time_source == "gps" and not h.adjusted_gps_time:
+            report.notes.append(
+                "the header says GPS week time (global encoding bit 0 clear) but the times run past a week "
+                "and match the file's date as adjusted standard GPS time; read as such"
+            )
     if h.crs_wkt:
         report.crs_wkt, report.crs_source = h.crs_wkt, "file"
     elif site_file.crs:
@@ -278,11 +362,15 @@ def _inspect_points(fs, path: str, head: bytes, report: FileReport, site_file: S
     unusable = []
     if report.scan_time is None:
         unusable.append(
-            "no scan time: the points carry no absolute GPS time and the name has no YYYYMMDD_HHMMSS stamp; "
-            "rename the file or set [paths] time in the site file"
+            "no scan time: the points carry no absolute GPS time, no folder or file name holds a date "
+            "(YYYYMMDD_HHMMSS, 2016-05-01, 20160501, 2016/05/01) and the header has no creation date; "
+            f"put the file in a dated folder, or give its time in the site file: [times] \"{relpath}\" = \"2016-05-01T10:00:00Z\""
         )
     if report.crs_wkt is None:
-        unusable.append("no CRS in the file; give --crs EPSG:XXXX or [site] crs in the site file")
+        unusable.append(
+            "no CRS in the file; give --crs EPSG:XXXX or [site] crs in the site file "
+            "(--crs none if the scans are in a local frame)"
+        )
     if (report.point_count or 0) == 0 and deep:
         unusable.append("no readable points")
     report.problems.extend(unusable)
@@ -308,7 +396,7 @@ def _inspect_grid(fs, path: str, report: FileReport, site_file: SiteFile) -> Fil
     report.crs_source = info.crs_source
     report.bounds = info.bounds
     report.scan_time = info.time
-    report.time_source = "name" if info.time else None
+    report.time_source = "path" if info.time else None
     if report.crs_wkt is None:
         report.status = "unusable"
         report.problems.append("grid has no CRS; set crs in a site file [[grids.files]] rule or give --crs")
@@ -323,6 +411,8 @@ def _reason(exc: Exception, relpath: str) -> str:
 def _wkt(crs: str) -> str:
     from pyproj import CRS
 
+    if declares_no_crs(crs):
+        return LOCAL_FRAME_WKT
     return CRS.from_user_input(crs).to_wkt()
 
 

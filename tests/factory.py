@@ -9,10 +9,22 @@ import laspy
 import numpy as np
 import pyproj
 
-from archive.timeutil import utc_to_adjusted_gps
 
 SITE_CRS = "EPSG:32633"
 X0, Y0 = 500_000.0, 7_650_000.0
+
+
+def adjusted_gps(when: datetime) -> float:
+    """UTC → LAS adjusted standard GPS time (GPS seconds - 1e9), from astropy, not from the project.
+
+    reference: astropy.time (its own leap-second table, shipped with astropy-iers-data)
+    """
+    from astropy.time import Time
+    from astropy.utils import iers
+
+    iers.conf.auto_download = False
+    naive = when.astimezone(timezone.utc).replace(tzinfo=None)
+    return round(float(Time(naive.isoformat(), scale="utc").gps) - 1e9, 6)
 
 
 def scan_points(n: int, seed: int = 0) -> dict[str, np.ndarray]:
@@ -48,7 +60,7 @@ def write_las(path: Path, n: int, when: datetime, *, version: str = "1.4", point
     las.return_number = np.ones(n, np.uint8)
     las.number_of_returns = np.ones(n, np.uint8)
     las.classification = np.where(p["z"] > 40, 2, 1).astype(np.uint8)
-    t0 = utc_to_adjusted_gps(when) if version == "1.4" else 3 * 86400.0
+    t0 = adjusted_gps(when) if version == "1.4" else 3 * 86400.0
     las.gps_time = t0 + np.arange(n) * 1e-4
     if extra:
         las.deviation = np.random.default_rng(seed).random(n).astype(np.float32)

@@ -215,7 +215,7 @@ def test_hilbert_order_inside_groups_is_available(tmp_path) -> None:
 
 
 def test_wrong_input_is_refused(tmp_path) -> None:
-    bad = pa.table({"x": [1.0], "y": [2.0], "z": [3.0]})
+    bad = pa.table({"x": pa.array([1.0], pa.float32()), "y": [2.0], "z": [3.0]})  # float64 is allowed, float32 not
     with pytest.raises(TypeError, match="decimal128"):
         write_scan([bad], str(tmp_path / "b.parquet"), GRID, metadata={})
     with pytest.raises(ValueError, match="empty"):

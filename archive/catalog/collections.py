@@ -20,6 +20,7 @@ from pyproj import CRS, Transformer
 from archive.catalog import extensions as ext
 from archive.catalog.items import JSON, PARQUET, SCANS_ID, ZARR
 from archive.catalog.store import relative_href
+from archive.frames import is_local
 from archive.layout import CATALOG, GRIDS_COLLECTION, SCANS_COLLECTION, SCANS_INDEX
 
 GRIDS_ID = "grids"
@@ -102,6 +103,14 @@ def _links(here: str, targets: Iterable[tuple[str, str, str | None]]) -> list[py
     ]
 
 
+def _extent(corner: dict) -> list[float]:
+    """WGS84 extent of the georeferenced Items; the whole Earth when all are in local frames (STAC
+    requires a spatial extent, and a local frame cannot be placed)."""
+    box = [pc.min(corner["xmin"]).as_py(), pc.min(corner["ymin"]).as_py(),
+           pc.max(corner["xmax"]).as_py(), pc.max(corner["ymax"]).as_py()]
+    return [-180.0, -90.0, 180.0, 90.0] if None in box else box
+
+
 def scans_collection(index: pa.Table, settings: Mapping[str, Any]) -> dict[str, Any]:
     """Collection of all scan Items, computed from the search index's columns (no Item JSON parsed)."""
     if index.num_rows == 0:
@@ -122,8 +131,7 @@ def scans_collection(index: pa.Table, settings: Mapping[str, Any]) -> dict[str, 
             + license_note
         ),
         extent=pystac.Extent(
-            pystac.SpatialExtent([[pc.min(corner["xmin"]).as_py(), pc.min(corner["ymin"]).as_py(),
-                                   pc.max(corner["xmax"]).as_py(), pc.max(corner["ymax"]).as_py()]]),
+            pystac.SpatialExtent([_extent(corner)]),
             pystac.TemporalExtent([[pc.min(starts).as_py(), pc.max(ends).as_py()]]),
         ),
         license=license_id,
@@ -160,8 +168,9 @@ def grids_collection(
     ``fallback_extent`` (the scans' extent dict) is used while there are no cubes yet.
     """
     license_id, license_note = _license(settings)
+    placed = [g for g in grids if not is_local(g.crs_wkt)]  # a local frame cannot be placed on the Earth
     if grids:
-        boxes = [_wgs84_bbox(g) for g in grids]
+        boxes = [_wgs84_bbox(g) for g in placed] or [[-180.0, -90.0, 180.0, 90.0]]
         times = [t for g in grids for t in (g.start, g.end) if t is not None]
         extent = pystac.Extent(
             pystac.SpatialExtent([[min(b[0] for b in boxes), min(b[1] for b in boxes),

@@ -91,8 +91,8 @@ def index_table(items: list[dict[str, Any]]) -> pa.Table:
     for item in items:
         p = item["properties"]
         here = item_path(ScanId.parse(item["id"]))
-        b = item["bbox"]
-        xmin, ymin, xmax, ymax = (b[0], b[1], b[3], b[4]) if len(b) == 6 else b
+        b = item.get("bbox")  # None for a scan in a local frame (geometry null)
+        xmin, ymin, xmax, ymax = ((b[0], b[1], b[3], b[4]) if len(b) == 6 else b) if b else (None,) * 4
         rows.append(
             {
                 "id": item["id"],
@@ -103,8 +103,8 @@ def index_table(items: list[dict[str, Any]]) -> pa.Table:
                 "datetime": _time(p.get("datetime")),
                 "start_datetime": _time(p.get("start_datetime")),
                 "end_datetime": _time(p.get("end_datetime")),
-                "geometry": shapely.to_wkb(shape(item["geometry"]), flavor="iso"),
-                "bbox": {"xmin": xmin, "ymin": ymin, "xmax": xmax, "ymax": ymax},
+                "geometry": shapely.to_wkb(shape(item["geometry"]), flavor="iso") if item.get("geometry") else None,
+                "bbox": {"xmin": xmin, "ymin": ymin, "xmax": xmax, "ymax": ymax} if b else None,
                 "scanshelf:station": p[f"{ext.PREFIX}station"],
                 "proj:code": p.get("proj:code"),
                 "proj:bbox": p.get("proj:bbox"),
@@ -155,7 +155,7 @@ def points_checksums(shelf: ShelfFiles) -> dict[str, str | None]:
 
 
 def _file_metadata(table: pa.Table, collection: dict[str, Any] | None) -> dict[bytes, bytes]:
-    geoms = shapely.from_wkb(table.column("geometry").to_numpy(zero_copy_only=False))
+    geoms = shapely.from_wkb(table.column("geometry").drop_null().to_numpy(zero_copy_only=False))
     types = sorted({g.geom_type for g in geoms}) if len(geoms) else []
     bounds = list(shapely.total_bounds(geoms)) if len(geoms) else []
     geo = {

@@ -18,10 +18,12 @@ from shapely.geometry import box, mapping, shape
 
 from archive.catalog import extensions as ext
 from archive.catalog.store import multihash_sha256, relative_href
+from archive.frames import is_local
 from archive.layout import CATALOG, SCANS_COLLECTION, ScanId, item_path
 from archive.records import ColumnInfo, ScanRecord
 
 SCANS_ID = "scans"
+APPROXIMATE_TIMES = ("gps_week_header", "path_date", "header_date")  # known to the day only
 PARQUET = "application/vnd.apache.parquet"
 ZARR = "application/vnd.zarr; version=3"
 PNG = "image/png"
@@ -134,12 +136,15 @@ def _to_wgs84(crs_wkt: str) -> Transformer:
     return Transformer.from_crs(CRS.from_wkt(crs_wkt), CRS.from_epsg(4326), always_xy=True)
 
 
-def _footprint_and_bbox(record: ScanRecord) -> tuple[dict, list[float]]:
+def _footprint_and_bbox(record: ScanRecord) -> tuple[dict | None, list[float] | None]:
     """WGS84 footprint and bbox; the bbox covers both the outline and every point.
 
     The outline may leave out stray points (specks are dropped to keep it small), so the bbox
     comes from the native bbox reprojected, widened to the outline's cells where they stick out.
+    A scan in a local frame has neither (STAC: geometry null, no bbox); ``proj:bbox`` keeps its box.
     """
+    if is_local(record.crs_wkt):
+        return None, None
     xmin, ymin, _, xmax, ymax, _ = record.bbox
     points_box = box(*_to_wgs84(record.crs_wkt).transform_bounds(xmin, ymin, xmax, ymax, densify_pts=21))
     geom = shape(record.footprint) if record.footprint else points_box
@@ -154,8 +159,11 @@ def _projection(record: ScanRecord) -> dict[str, Any]:
     }
 
 
-def _pointcloud(record: ScanRecord, geometry: dict) -> dict[str, Any]:
-    area, _ = Geod(ellps="WGS84").geometry_area_perimeter(shape(geometry))
+def _pointcloud(record: ScanRecord, geometry: dict | None) -> dict[str, Any]:
+    if geometry is None:  # local frame: the native box's area, in the frame's square units
+        area = (record.bbox[3] - record.bbox[0]) * (record.bbox[4] - record.bbox[1])
+    else:
+        area, _ = Geod(ellps="WGS84").geometry_area_perimeter(shape(geometry))
     schemas, stats = [], []
     for position, col in enumerate(record.columns):
         kind = _pc_type(col)
@@ -206,6 +214,8 @@ def _own_fields(record: ScanRecord) -> dict[str, Any]:
         f"{p}source_format": record.source_format,
         f"{p}row_groups": int(record.row_groups),
         f"{p}partial": bool(record.partial),
+        **({f"{p}time_source": record.time_source,
+            f"{p}time_approximate": record.time_source in APPROXIMATE_TIMES} if record.time_source else {}),
         f"{p}problems": list(record.problems),
     }
     if record.scanner_origin is not None:

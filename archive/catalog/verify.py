@@ -89,6 +89,13 @@ def verify_shelf(
     return report
 
 
+def _json_or_none(text: str | None) -> Any:
+    try:
+        return json.loads(text) if text is not None else None
+    except ValueError:
+        return None
+
+
 def _check_link_file(shelf: ShelfFiles, target: str, link: dict[str, Any], report: VerifyReport) -> None:
     """Linked files that carry file:size/file:checksum (the search index) are checked like assets."""
     import hashlib
@@ -203,10 +210,10 @@ def _check_index(shelf: ShelfFiles, items: dict[str, dict[str, Any]], report: Ve
         if name not in table.column_names:
             report.problems.append(f"{SCANS_INDEX}: column {name!r} missing")
         elif name == "item_json":
-            got = [json.loads(t) for t in table.column(name).to_pylist()]
+            got = [_json_or_none(t) for t in table.column(name).to_pylist()]
             want = [json.loads(t) for t in expected.column(name).to_pylist()]
             for g, w in zip(got, want, strict=True):
-                if g != w:
+                if g != w:  # a damaged text (None) differs too
                     report.problems.append(f"{SCANS_INDEX}: item_json of {w['id']} differs from its Item JSON")
         elif table.column(name).to_pylist() != expected.column(name).to_pylist():
             report.problems.append(f"{SCANS_INDEX}: column {name!r} does not match the Item JSON files")

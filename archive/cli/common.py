@@ -61,6 +61,6 @@ def site_option(command: Callable[..., Any]) -> Callable[..., Any]:
                              "CRS, ASCII columns, grids, catalog fields. See examples/site.toml.")(accept_old_spelling)
 
 
-crs_option = click.option("--crs", help="CRS for files that declare none, e.g. EPSG:32633 (overrides the site file).")
+crs_option = click.option("--crs", help="CRS for files that declare none, e.g. EPSG:32633, or `none` for scans in a local frame with no CRS (overrides the site file).")
 quiet_option = click.option("-q", "--quiet", is_flag=True, help="No progress bars.")
 json_option = click.option("--json", "as_json", is_flag=True, help="Print the result as JSON (for scripts); no progress bars.")

@@ -15,6 +15,41 @@ from affine import Affine
 from archive.layout import check_station
 
 
+# The largest station grid built: 4096 × 4096 cells. Binning holds three 8-byte sums per cell
+# (~400 MB) and the cube three 4-byte layers per epoch; a station whose scans would need more
+# (scans from different places in one folder, or a cell far too small) is not gridded.
+MAX_CELLS = 4096 * 4096
+
+
+def overlapping_groups(boxes: list[tuple[float, float, float, float]], gap: float = 0.0) -> list[list[int]]:
+    """Indices of (xmin, ymin, xmax, ymax) boxes grouped by overlap (boxes closer than ``gap`` touch),
+    transitively; groups and their members in input order.
+
+    One station folder may hold scans from different places: gridding them together would span
+    the distance between them, so each group of overlapping scans is judged on its own.
+    """
+    b = np.asarray(boxes, dtype=np.float64).reshape(-1, 4)
+    parent = list(range(len(b)))
+
+    def root(i: int) -> int:
+        while parent[i] != i:
+            parent[i] = parent[parent[i]]
+            i = parent[i]
+        return i
+
+    for i in range(len(b)):
+        near = np.flatnonzero(
+            (b[i + 1 :, 0] <= b[i, 2] + gap) & (b[i + 1 :, 2] >= b[i, 0] - gap)
+            & (b[i + 1 :, 1] <= b[i, 3] + gap) & (b[i + 1 :, 3] >= b[i, 1] - gap)
+        ) + i + 1
+        for j in near:
+            parent[root(int(j))] = root(i)
+    groups: dict[int, list[int]] = {}
+    for i in range(len(b)):
+        groups.setdefault(root(i), []).append(i)
+    return sorted(groups.values(), key=lambda g: g[0])
+
+
 @dataclass(frozen=True)
 class GridSpec:
     """North-up grid: lower-left corner (x0, y0), square cells of ``cell`` metres, nx × ny cells."""
@@ -59,6 +94,15 @@ class GridSpec:
         nx += (x0 + nx * cell) <= xmax
         ny += (y0 + ny * cell) <= ymax
         return cls(station, crs_wkt, x0, y0, float(cell), int(nx), int(ny))
+
+    @property
+    def cells(self) -> int:
+        return self.nx * self.ny
+
+    def overlaps(self, bounds: tuple[float, ...]) -> bool:
+        """Whether a scan's (xmin, ymin, ..., xmax, ymax, ...) box touches the grid."""
+        xmin, ymin, xmax, ymax = (bounds[0], bounds[1], bounds[3], bounds[4]) if len(bounds) == 6 else bounds
+        return xmin <= self.x1 and xmax >= self.x0 and ymin <= self.y1 and ymax >= self.y0
 
     @property
     def y1(self) -> float:

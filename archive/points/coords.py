@@ -1,11 +1,24 @@
-"""Coordinates as exact decimals: the scaled integers of LAS, visible as real numbers.
+"""Coordinates stored exactly: the scaled integers of LAS, visible as real numbers.
 
 A LAS file stores integers X and a scale and offset; the real coordinate is X*scale + offset
-(ASPRS LAS 1.4, "Point Data Records"). We store N = X*(scale*10^k) + offset*10^k as a Parquet
-DECIMAL(18, k) on INT64, so DuckDB and pyarrow see real coordinates, the value is exactly the
-decimal the scanner recorded, and delta encoding keeps the integers small. The LAS scale and
-offset are kept too, so `to_float` can rebuild the float64 value bit for bit as a LAS reader
-computes it.
+(ASPRS LAS 1.4, "Point Data Records"), and the specification allows any double as scale and
+offset. Two representations, chosen per axis from the header:
+
+* **decimal** (scale and offset are short decimals such as 0.001, 0.0025, 500000.25): we store
+  N = X*(scale*10^k) + offset*10^k as a Parquet DECIMAL(18, k) on INT64, so DuckDB and pyarrow
+  see real coordinates, the value is exactly the decimal the scanner recorded, and delta
+  encoding keeps the integers small.
+* **float** (any other scale, e.g. 1.16451354e-06 or 1.0000000000000002e-06, or a decimal that
+  needs more than 18 digits): we store float64 x = float64(X)*scale + offset, computed exactly as
+  a LAS reader computes it, so the column *is* the reader's value. The integers stay
+  recoverable as round((x - offset)/scale): that holds for every int32 X when
+  |offset|/scale + 2^31 < 2^50 (two roundings of at most half an ulp each stay far below half a
+  step), and ``from_las`` checks it on every point it encodes. Where the bound does not hold the
+  axis is marked ``raw`` and the file also stores the LAS integers as int32 column ``<axis>_raw``.
+
+The LAS scale and offset of each axis go into the file's key-value metadata ("axes"), so
+`to_float` rebuilds the float64 value bit for bit as a LAS reader computes it and `to_las`
+gives back the file's integers.
 """
 
 from __future__ import annotations
@@ -17,6 +30,12 @@ import numpy as np
 import pyarrow as pa
 
 MAX_DIGITS = 18  # DECIMAL precision that fits INT64
+DECIMAL_LIMIT = 10**MAX_DIGITS
+RECOVERABLE = 2.0**50  # |offset|/scale + 2^31 below this: round((x - offset)/scale) gives X back
+
+
+class LossyEncoding(ValueError):
+    """The stored value would not give back the source's integer: refuse to write it."""
 
 
 def _decimal_places(value: float) -> int:
@@ -30,13 +49,22 @@ class AxisEncoding:
 
     scale: float  # LAS scale (or 10^-k for text sources)
     offset: float  # LAS offset (0 for text sources)
-    places: int  # k, digits after the decimal point in the stored DECIMAL
+    places: int  # k, digits after the decimal point in the stored DECIMAL (0 for float axes)
     text: bool = False  # parsed from text: floats are the nearest doubles to the decimals
+    kind: str = "decimal"  # "decimal" (DECIMAL(18, k)) or "float" (float64 X*scale + offset)
+    raw: bool = False  # float axis whose integers are also stored (column <axis>_raw)
 
     @classmethod
     def for_las(cls, scale: float, offset: float) -> "AxisEncoding":
+        """Decimal where scale and offset are decimals that fit 18 digits, else float (see module doc)."""
+        scale, offset = float(scale), float(offset)
         places = max(_decimal_places(scale), _decimal_places(offset))
-        return cls(float(scale), float(offset), places)
+        if places <= MAX_DIGITS:
+            enc = cls(scale, offset, places)
+            if abs(enc._step) * 2**31 + abs(enc._shift) < DECIMAL_LIMIT:
+                return enc
+        raw = not abs(offset) / scale + 2**31 < RECOVERABLE
+        return cls(scale, offset, 0, kind="float", raw=raw)
 
     @classmethod
     def for_text(cls, places: int) -> "AxisEncoding":
@@ -44,7 +72,7 @@ class AxisEncoding:
 
     @property
     def type(self) -> pa.DataType:
-        return pa.decimal128(MAX_DIGITS, self.places)
+        return pa.float64() if self.kind == "float" else pa.decimal128(MAX_DIGITS, self.places)
 
     @property
     def _step(self) -> int:
@@ -57,9 +85,28 @@ class AxisEncoding:
         return int(Decimal(repr(self.offset)) * 10**self.places)
 
     def from_las(self, raw: np.ndarray) -> pa.Array:
-        """LAS integers X → exact DECIMAL array of X*scale + offset."""
+        """LAS integers X → the stored column of X*scale + offset (exact DECIMAL, or float64).
+
+        For float axes without stored integers, every value is checked to give its integer back
+        (``to_las``); a failure raises ``LossyEncoding`` rather than write a value that loses it.
+        """
+        if self.kind == "float":
+            values = raw.astype(np.float64) * self.scale + self.offset  # ASPRS LAS 1.4, as laspy computes it
+            if not self.raw:
+                back = self.to_las(values)
+                if not np.array_equal(back, raw):
+                    bad = int(np.flatnonzero(back != raw)[0])
+                    raise LossyEncoding(
+                        f"integer {int(raw[bad])} with scale {self.scale!r} and offset {self.offset!r} does not "
+                        "survive as a float64 coordinate"
+                    )
+            return pa.array(values, pa.float64())
         units = raw.astype(np.int64) * self._step + self._shift
         return decimal_from_units(units, self.places)
+
+    def to_las(self, values: np.ndarray) -> np.ndarray:
+        """float64 coordinates of a float axis → the LAS integers they were computed from."""
+        return np.rint((np.asarray(values, dtype=np.float64) - self.offset) / self.scale).astype(np.int64)
 
     def from_float(self, values: np.ndarray) -> tuple[pa.Array, np.ndarray]:
         """Floats parsed from text → DECIMAL; also returns a mask of values not exact at k places."""
@@ -69,7 +116,9 @@ class AxisEncoding:
         return decimal_from_units(units, self.places), inexact
 
     def to_float(self, units: np.ndarray) -> np.ndarray:
-        """Stored integers → float64 exactly as the source's reader computes them."""
+        """Stored integers (or float64 values of a float axis) → float64 exactly as the source's reader computes them."""
+        if self.kind == "float":
+            return np.asarray(units, dtype=np.float64)
         if self.text:
             # the correctly rounded quotient of two exact doubles equals float(text)
             return units.astype(np.float64) / 10.0**self.places
@@ -77,11 +126,20 @@ class AxisEncoding:
         return raw.astype(np.float64) * self.scale + self.offset
 
     def to_dict(self) -> dict:
-        return {"scale": self.scale, "offset": self.offset, "places": self.places, "text": self.text}
+        return {"scale": self.scale, "offset": self.offset, "places": self.places, "text": self.text,
+                "kind": self.kind, "raw": self.raw}
 
     @classmethod
     def from_dict(cls, d: dict) -> "AxisEncoding":
-        return cls(float(d["scale"]), float(d["offset"]), int(d["places"]), bool(d.get("text", False)))
+        return cls(float(d["scale"]), float(d["offset"]), int(d["places"]), bool(d.get("text", False)),
+                   str(d.get("kind", "decimal")), bool(d.get("raw", False)))
+
+    def column(self, table: pa.Table, axis: str) -> np.ndarray:
+        """float64 coordinates of ``axis`` in ``table`` as the source's reader computes them."""
+        column = table.column(axis)
+        if pa.types.is_decimal(column.type):
+            return self.to_float(units_of(column))
+        return column.to_numpy().astype(np.float64, copy=False)
 
 
 def decimal_from_units(units: np.ndarray, places: int) -> pa.Array:

@@ -48,8 +48,10 @@ class _Column:
     def of(cls, field: pa.Field) -> "_Column":
         t = field.type
         if field.name in COORDS:
+            if pa.types.is_float64(t):  # coords.py "float" axes: any LAS scale that is not a short decimal
+                return cls(field.name, t, np.dtype(np.float64), "fixed")
             if not pa.types.is_decimal(t) or t.precision > 18:
-                raise TypeError(f"column {field.name!r} must be decimal128(18, k) from coords.py, got {t}")
+                raise TypeError(f"column {field.name!r} must be decimal128(18, k) or float64 from coords.py, got {t}")
             return cls(field.name, t, np.dtype(np.int64), "units")
         if pa.types.is_boolean(t):
             return cls(field.name, t, np.dtype(np.uint8), "bool")
@@ -424,9 +426,10 @@ def _part(chunk: pa.Table, columns: list[_Column], grid: SiteGrid, key_dtype: np
         values[c.name] = v
         if m is not None:
             valid[c.name] = m
-    places_x, places_y = chunk.schema.field("x").type.scale, chunk.schema.field("y").type.scale
-    if places_x == places_y:
-        keys = grid.keys_of_units(values["x"], values["y"], places_x)
-    else:
-        keys = grid.keys(values["x"] * 10.0**-places_x, values["y"] * 10.0**-places_y)
+    tx, ty = chunk.schema.field("x").type, chunk.schema.field("y").type
+    if pa.types.is_decimal(tx) and pa.types.is_decimal(ty) and tx.scale == ty.scale:
+        keys = grid.keys_of_units(values["x"], values["y"], tx.scale)
+    else:  # float64 axes hold real coordinates already
+        real = [values[a] if pa.types.is_float64(t) else values[a] * 10.0**-t.scale for a, t in (("x", tx), ("y", ty))]
+        keys = grid.keys(*real)
     return Part(keys.astype(key_dtype), values, valid)

@@ -46,7 +46,7 @@ class Encoding:
         dictionary: list[str] = []
         for f in schema:
             t = f.type
-            if f.name in COORDS:
+            if f.name in COORDS and pa.types.is_decimal(t):  # float64 coordinates: as floats
                 encodings[f.name] = self.coordinates
             elif self.dictionary_enums and (pa.types.is_boolean(t) or (pa.types.is_integer(t) and t.bit_width == 8)):
                 dictionary.append(f.name)

@@ -177,6 +177,14 @@ def _write_las(table: pa.Table, path: str, axes, crs, meta: dict, compress: bool
     edges = np.cumsum(_scan_lengths(table))[:-1]
     integers = []
     for axis_i, name in enumerate(AXES):
+        if pa.types.is_floating(table[name].type):  # a float axis (coords.py): its scans' own LAS integers
+            encs = [a.get(name) for a in axes]
+            if any(e is None or e != encs[0] for e in encs):
+                raise ValueError(f"{name}: these scans use LAS scales that cannot share one file exactly; "
+                                 "extract per station, or to Parquet")
+            integers.append(encs[0].to_las(table[name].to_numpy()).astype(np.int32))
+            header.scales[axis_i], header.offsets[axis_i] = encs[0].scale, encs[0].offset
+            continue
         units = np.split(units_of(table[name]), edges)
         encs = [a.get(name) or AxisEncoding.for_text(table[name].type.scale) for a in axes]
         chosen, raw = _las_axis(name, encs, units)

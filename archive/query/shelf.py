@@ -317,6 +317,14 @@ class Shelf:
         t0, t1 = as_utc(start), as_utc(end, end=True)
         stations = {station} if isinstance(station, str) else set(station) if station else None
         index = self.index
+        if stations is not None:
+            known = set(index.column("scanshelf:station").to_pylist())
+            unknown = sorted(stations - known)
+            if unknown:
+                raise ValueError(
+                    f"{self.url}: no station {', '.join(map(repr, unknown))} on this shelf; its stations are "
+                    f"{', '.join(sorted(known)) or 'none yet'}"
+                )
         has_proj = "proj:bbox" in index.column_names
         found = []
         for row in index.to_pylist():

@@ -15,7 +15,7 @@ from archive.sources.las import LasReader, looks_like_las
 
 POINT_TEXT_SUFFIXES = {".csv", ".txt", ".xyz", ".pts", ".asc", ".tsv"}
 GRID_SUFFIXES = {".tif", ".tiff", ".nc", ".nc4", ".asc", ".grd"}
-SIDECAR_SUFFIXES = {".prj", ".aux.xml", ".tfw", ".ovr"}
+SIDECAR_SUFFIXES = {".prj", ".aux.xml", ".tfw", ".ovr", ".wdp"}  # .wdp: LAS waveform data packets
 
 __all__ = [
     "AsciiReader", "DamagedSource", "LasReader", "PointReader", "ReadTally", "SourceError", "SourceHeader",

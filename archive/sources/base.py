@@ -7,7 +7,7 @@ then for chunks of points as Arrow tables whose x, y, z are exact decimals.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from datetime import datetime
+from datetime import date, datetime
 from typing import Iterator, Protocol
 
 import pyarrow as pa
@@ -37,6 +37,8 @@ class SourceHeader:
     adjusted_gps_time: bool = False  # LAS global encoding bit 0: times are absolute
     columns: tuple[str, ...] = ()
     problems: list[str] = field(default_factory=list)  # found from the header alone
+    notes: list[str] = field(default_factory=list)  # facts worth saying that are not damage (waveform data)
+    creation_date: date | None = None  # LAS header: file creation day (year + day of year)
 
 
 @dataclass

@@ -9,14 +9,15 @@ from typing import Iterator
 import numpy as np
 import pyarrow as pa
 
-from archive.points.coords import AxisEncoding
+from archive.points.coords import AxisEncoding, LossyEncoding
 from archive.sources.base import DamagedSource, ReadTally, SourceError, SourceHeader
 
 LAS_SIGNATURE = b"LASF"
 RAW_HEADER = 375  # the LAS 1.4 public header block; older versions use its first 227 bytes
 VLR_HEADER = 54  # ASPRS LAS: reserved (2), user id (16), record id (2), length after header (2), description (32)
 EVLR_HEADER = 60  # ASPRS LAS 1.4: as a VLR header but with an 8-byte length
-DECIMAL_LIMIT = 10**18  # coordinates are stored as DECIMAL(18, k)
+COORDINATE_LIMIT = 1e15  # metres (or feet, or millimetres): no real frame reaches this
+WAVEFORM_FORMATS = (4, 5, 9, 10)  # point formats with a wave packet descriptor (ASPRS LAS 1.3/1.4)
 
 
 def _laspy():
@@ -63,10 +64,18 @@ class LasReader:
                     adjusted_gps_time=bool(int(h.global_encoding.gps_time_type) == 1),
                     columns=tuple(self._renames(n) for n in h.point_format.dimension_names if n not in ("X", "Y", "Z")),
                     problems=problems + vlr_problems,
+                    creation_date=h.creation_date if h.creation_date and h.creation_date.year >= 1980 else None,
                 )
                 self._offset = int(h.offset_to_point_data)
                 self._record = int(h.point_format.size)
                 self._evlr_start = int(getattr(h, "start_of_first_evlr", 0) or 0)
+                waveform = _waveform_note(h, self.relpath)
+                if waveform:
+                    header.notes.append(waveform)
+                wave_start = int(getattr(h, "start_of_waveform_data_packet_record", 0) or 0)
+                if h.global_encoding.waveform_data_packets_internal and wave_start > self._offset:
+                    # the wave packets (an EVLR in 1.4, a bare record in 1.3) follow the points
+                    self._evlr_start = min(self._evlr_start, wave_start) if self._evlr_start > self._offset else wave_start
                 legacy = getattr(h, "legacy_point_count", None)
         except SourceError:
             raise
@@ -147,7 +156,13 @@ class LasReader:
         columns: dict[str, pa.Array] = {}
         for axis, raw in zip("xyz", ("X", "Y", "Z")):
             enc = self.header.axes[axis]
-            columns[axis] = enc.from_las(np.asarray(record[raw]))
+            try:
+                columns[axis] = enc.from_las(np.asarray(record[raw]))
+            except LossyEncoding as exc:
+                raise SourceError(f"{self.relpath}: {axis}: {exc}; please report this file") from None
+        for axis, raw in zip("xyz", ("X", "Y", "Z")):
+            if self.header.axes[axis].raw:  # integers not recoverable from float64: keep them
+                columns[f"{axis}_raw"] = pa.array(np.ascontiguousarray(record[raw], dtype=np.int32))
         for name in names:
             if name in ("X", "Y", "Z"):
                 continue
@@ -185,11 +200,10 @@ def _check_raw_header(fh, relpath: str, size: int) -> list[str]:
             raise SourceError(f"{relpath}: the {axis} scale in the header is {scale!r}, not a positive number; the header is damaged")
         if not math.isfinite(shift):
             raise SourceError(f"{relpath}: the {axis} offset in the header is {shift!r}; the header is damaged")
-        enc = AxisEncoding.for_las(scale, shift)
-        if abs(enc._step) * 2**31 + abs(enc._shift) >= DECIMAL_LIMIT:
+        if abs(shift) + scale * 2**31 > COORDINATE_LIMIT:
             raise SourceError(
-                f"{relpath}: {axis} scale {scale!r} and offset {shift!r} give coordinates beyond 18 significant "
-                "digits; the header is damaged"
+                f"{relpath}: {axis} scale {scale!r} and offset {shift!r} give coordinates beyond {COORDINATE_LIMIT:.0e} "
+                "in size, far outside any coordinate system on Earth; the header is damaged"
             )
     if raw[25] >= 4 and header_size >= RAW_HEADER and len(raw) >= RAW_HEADER:
         evlr_start, n_evlr = struct.unpack_from("<QI", raw, 235)
@@ -212,6 +226,25 @@ def _check_raw_header(fh, relpath: str, size: int) -> list[str]:
             break
         pos = end
     return problems
+
+
+def _waveform_note(h, relpath: str) -> str | None:
+    """Where the waveform samples of a wave-packet point format are, and that they are not carried.
+
+    The points keep their wave packet descriptor fields (index, offset, size, location, x_t, y_t,
+    z_t); the samples themselves stay in the source file (or its .wdp) and are not copied.
+    """
+    if int(h.point_format.id) not in WAVEFORM_FORMATS:
+        return None
+    enc = h.global_encoding
+    if enc.waveform_data_packets_external:
+        where = f"in the external file {relpath.rsplit('.', 1)[0]}.wdp"
+    elif enc.waveform_data_packets_internal:
+        where = f"inside the file from byte {int(getattr(h, 'start_of_waveform_data_packet_record', 0) or 0)}"
+    else:
+        where = "nowhere (the header flags neither internal nor external wave packets)"
+    return (f"point format {int(h.point_format.id)} carries waveform descriptors; the waveform samples, {where}, "
+            "are not carried into the shelf (keep the source file for them)")
 
 
 def looks_like_las(head: bytes) -> bool:
