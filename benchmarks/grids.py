@@ -29,7 +29,7 @@ import xarray as xr
 from zarr.storage import LocalStore, WrapperStore
 
 from archive.grids import GridAccumulator, GridSpec, bin_points, write_epoch, write_series
-from archive.grids.cube import epoch_dataset
+from archive.grids.cube import epoch_dataset, series_shape
 
 EPSG = "EPSG:32633"
 
@@ -133,12 +133,24 @@ def build_cube(url: str, epochs: int, size: int) -> GridSpec:
     return spec
 
 
+def objects(url: str) -> None:
+    """Objects and bytes on disk per layout (what an upload or a listing pays for)."""
+    files = [p for p in Path(url).rglob("*") if p.is_file()]
+    series = [p for p in files if "series" in p.relative_to(url).parts]
+    maps = [p for p in files if p not in set(series)]
+    print(f"objects: {len(files)} in all ({len(maps)} map layout + metadata, {len(series)} series layout); "
+          f"bytes: map {sum(p.stat().st_size for p in maps):,}, series {sum(p.stat().st_size for p in series):,}; "
+          f"largest object {max(p.stat().st_size for p in files):,} B")
+
+
 def reads(url: str, epochs: int, size: int) -> None:
     store = CountingStore(LocalStore(url, read_only=True))
     with warnings.catch_warnings():  # the 1-D time coordinates are stored in longer chunks: harmless
         warnings.simplefilter("ignore", UserWarning)
         maps = xr.open_zarr(store, zarr_format=3, consolidated=True, chunks={"time": 1, "y": -1, "x": -1})
-    series = xr.open_zarr(store, group="series", zarr_format=3, consolidated=True, chunks={"time": -1, "y": 16, "x": 16})
+    _, shard = series_shape(epochs, size, size)
+    series = xr.open_zarr(store, group="series", zarr_format=3, consolidated=True, chunks=None).chunk(
+        {"time": -1, "y": shard[1], "x": shard[2]})
     t_mid, py, px = epochs // 2, size // 2 + 3, size // 3 + 5
     epoch_values = maps["elevation"][t_mid].values
     pixel_values = maps["elevation"][:, py, px].values
@@ -172,15 +184,18 @@ def reads(url: str, epochs: int, size: int) -> None:
 def main() -> None:
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--points", type=int, default=10_000_000)
-    p.add_argument("--epochs", type=int, default=1000)
+    p.add_argument("--epochs", default="5,1000", help="cube sizes in epochs, comma-separated")
     p.add_argument("--size", type=int, default=256)
     args = p.parse_args()
-    gridding(args.points)
-    print()
-    with tempfile.TemporaryDirectory() as tmp:
-        url = str(Path(tmp) / "bench.zarr")
-        build_cube(url, args.epochs, args.size)
-        reads(url, args.epochs, args.size)
+    if args.points:
+        gridding(args.points)
+    for epochs in (int(e) for e in args.epochs.split(",")):
+        print()
+        with tempfile.TemporaryDirectory() as tmp:
+            url = str(Path(tmp) / "bench.zarr")
+            build_cube(url, epochs, args.size)
+            objects(url)
+            reads(url, epochs, args.size)
     print(
         "\nwhy two layouts: a chunk (ct, cy, cx) makes (a) read ct x and (b) read cy*cx x the ideal, and each"
         "\ninner chunk costs 16 B of shard index; no single sharded chunking keeps both within 4x at a sane object"

@@ -33,7 +33,7 @@ STATISTICS = ("x", "y", "z", "gps_time", "time")  # the columns readers prune on
 # whose min/max box meets the window. Measured on scan-like points (benchmarks/remote.py):
 FOOTER_BYTES_PER_GROUP = 720  # ~90 B of metadata per column chunk, 8 columns
 XYZ_BYTES_PER_POINT = 4.0  # x, y, z compressed (DELTA_BINARY_PACKED + zstd-1)
-BOX_SPREAD = 2.0  # a Hilbert range's min/max box meets about twice the window area its cells do
+BOX_SPREAD = 4.0  # fitted: a Hilbert range's min/max box meets windows more often than its cells do
 DESIGN_WINDOW = 20.0 * 20.0  # m²: the window rows are sized for (a slope failure, a building face)
 DESIGN_SHARE = 0.02  # window share used when the footprint is unknown
 MIN_ROWS, MAX_ROWS = 4096, 1 << 20  # below: encodings restart too often; above: pruning is moot
@@ -46,8 +46,9 @@ def row_group_rows(points: int | None, bounds: tuple[float, ...] | None = None) 
     when the scan is cut into G spatially tight (Hilbert) row groups, plus G footers' worth of
     column-chunk metadata. Setting the derivative of the sum to zero gives
     G = (s·N·b·√w / f)^(2/3) for N points, b bytes of x, y, z per point, f footer bytes per
-    group and s the spread of a group's min/max box: ~170 groups for 1.5M points, ~1,200 for 30M, so small scans get small row groups and
-    the footer stays a fraction of what a window reads. w is a 20 m × 20 m window's share of
+    group and s a fitted spread of a group's min/max box: ~290 groups for 1.5M points, ~1,950
+    for 30M, so small scans get small row groups and the footer stays a fraction of what a
+    window reads. w is a 20 m × 20 m window's share of
     the footprint (2 % when the footprint is unknown).
     """
     if not points or points <= MIN_ROWS:
