@@ -26,7 +26,7 @@ def duckdb_count(paths, box) -> int:
     return duckdb.execute(
         "SELECT count(*) FROM read_parquet(?) WHERE x BETWEEN ? AND ? AND y BETWEEN ? AND ?",
         [[str(p) for p in paths], box[0], box[2], box[1], box[3]],
-    ).fetchone()[0]
+    ).fetchall()[0][0]  # fetchone would leave the shared connection busy for the next test
 
 
 def test_las_integers_round_trip(shelf_dir, tmp_path):

@@ -41,28 +41,25 @@ def encode_shard(block: np.ndarray, chunk: tuple[int, int], shard: int, fill, qu
     t = block.shape[0]
     cy, cx = chunk
     ny, nx = shard // cy, shard // cx
-    full = np.full((t, shard, shard), fill, dtype=block.dtype)
+    full = np.full((t, shard, shard), fill, dtype=block.dtype.newbyteorder("<"))
     full[:, : block.shape[1], : block.shape[2]] = block
-    quantizer = numcodecs.Quantize(QUANTIZE_DIGITS, dtype="<f4") if quantize else None
+    if quantize:  # elementwise, so the whole shard at once equals the filter applied chunk by chunk
+        full = numcodecs.Quantize(QUANTIZE_DIGITS, dtype="<f4").encode(full).reshape(full.shape)
+    # (ny, nx, T, cy, cx): each inner chunk's values contiguous, in the C order zarr expects
+    tiles = np.ascontiguousarray(full.reshape(t, ny, cy, nx, cx).transpose(1, 3, 0, 2, 4))
+    flat = tiles.reshape(ny, nx, -1)
+    empty = np.isnan(flat).all(axis=2) if np.isnan(fill) else (flat == fill).all(axis=2)
+    if empty.all():
+        return None
     zstd = numcodecs.Zstd(level=ZSTD_LEVEL)
     index = np.full((ny, nx, 2), EMPTY, dtype="<u8")
     parts: list[bytes] = []
     offset = 0
-    for j in range(ny):
-        for i in range(nx):
-            values = full[:, j * cy:(j + 1) * cy, i * cx:(i + 1) * cx]
-            empty = np.isnan(values).all() if np.isnan(fill) else (values == fill).all()
-            if empty:
-                continue
-            values = np.ascontiguousarray(values, dtype=block.dtype.newbyteorder("<"))
-            if quantizer is not None:
-                values = quantizer.encode(values)
-            data = bytes(zstd.encode(values.tobytes()))
-            index[j, i] = (offset, len(data))
-            parts.append(data)
-            offset += len(data)
-    if not parts:
-        return None
+    for j, i in zip(*np.nonzero(~empty)):
+        data = bytes(zstd.encode(tiles[j, i].tobytes()))
+        index[j, i] = (offset, len(data))
+        parts.append(data)
+        offset += len(data)
     index_bytes = index.tobytes()
     return b"".join(parts) + index_bytes + google_crc32c.value(index_bytes).to_bytes(4, "little")
 
