@@ -33,7 +33,7 @@ from archive.grids.cube import (CUBE_VARS, FLOAT_VARS, QUANTIZE_DIGITS, SERIES_C
 
 EMPTY = np.uint64(2**64 - 1)  # index entry of a chunk that is not stored (sharding spec)
 ZSTD_LEVEL = 3
-BLOCK_CELLS = 1 << 22  # values read from the map layout at a time (memory: 16 MB of float32 per block)
+BLOCK = 256  # cells per side read from the map layout at a time: its inner chunk, so nothing is decoded twice
 
 
 def encode_shard(block: np.ndarray, chunk: tuple[int, int], shard: int, fill, quantize: bool) -> bytes | None:
@@ -97,24 +97,25 @@ def write_series(cube_url: str, storage_options: dict | None = None) -> None:
     chunk, shard = _skeleton(ds, cube_url, storage_options)
     fs, root = fsspec.core.url_to_fs(cube_url, **(storage_options or {}))
     group = zarr.open_group(zarr_store(cube_url, storage_options), mode="r+", zarr_format=3, use_consolidated=False)
-    t, ny, nx = ds.sizes["time"], ds.sizes["y"], ds.sizes["x"]
+    ny, nx = ds.sizes["y"], ds.sizes["x"]
     s = shard[1]
-    rows = max(1, BLOCK_CELLS // max(1, t * nx) // s) * s  # whole shard rows per read of the map layout
+    edge = max(BLOCK, s)  # a whole number of series shards and of map-layout inner chunks
     for name in CUBE_VARS:
         meta = group[f"{SERIES_GROUP}/{name}"].metadata
         fill = np.float32(np.nan) if name in FLOAT_VARS else 0
-        for y0 in range(0, ny, rows):
-            block = ds[name][:, y0:y0 + rows, :].values
-            files = {}
-            for jy in range(0, block.shape[1], s):
-                for ix in range(0, nx, s):
-                    data = encode_shard(block[:, jy:jy + s, ix:ix + s], chunk[1:], s, fill, name in FLOAT_VARS)
-                    if data is not None:
-                        key = meta.encode_chunk_key((0, (y0 + jy) // s, ix // s))
-                        files[f"{root}/{SERIES_GROUP}/{name}/{key}"] = data
-            for parent in {f.rsplit("/", 1)[0] for f in files}:
-                fs.makedirs(parent, exist_ok=True)  # local folders; a no-op on object stores
-            if files:
-                fs.pipe(files)
+        for y0 in range(0, ny, edge):
+            for x0 in range(0, nx, edge):
+                block = ds[name][:, y0:y0 + edge, x0:x0 + edge].values  # memory: T × edge² values
+                files = {}
+                for jy in range(0, block.shape[1], s):
+                    for ix in range(0, block.shape[2], s):
+                        data = encode_shard(block[:, jy:jy + s, ix:ix + s], chunk[1:], s, fill, name in FLOAT_VARS)
+                        if data is not None:
+                            key = meta.encode_chunk_key((0, (y0 + jy) // s, (x0 + ix) // s))
+                            files[f"{root}/{SERIES_GROUP}/{name}/{key}"] = data
+                for parent in {f.rsplit("/", 1)[0] for f in files}:
+                    fs.makedirs(parent, exist_ok=True)  # local folders; a no-op on object stores
+                if files:
+                    fs.pipe(files)
     group[SERIES_GROUP].attrs[SERIES_COMPLETE] = True
     zarr.consolidate_metadata(zarr_store(cube_url, storage_options))
