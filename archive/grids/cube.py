@@ -50,7 +50,8 @@ SERIES_COMPLETE = "scanshelf:series_complete"
 MAP_CHUNK = 256  # inner chunk edge of the map layout (cells)
 MAP_SHARD_BYTES = 16 << 20  # raw bytes of one map-layout shard at most (objects of ≤ ~16 MB)
 QUANTIZE_DIGITS = 3  # decimal places of a metre kept in elevation and elevation_std (≤ 0.5 mm error)
-SERIES_OBJECTS = 1536  # series-layout shards per station cube at most (3 variables)
+SERIES_OBJECTS = 1536  # series-layout shards per station cube at most (3 variables) ...
+SERIES_OBJECTS_PER_EPOCH = 8  # ... plus this many per epoch: long records afford smaller shard indexes
 TIME_CHUNK = 4096  # 1-D time/scan_id coordinates: one small object, rewritten on append
 CUBE_VARS = ("elevation", "elevation_std", "point_count")
 
@@ -147,13 +148,14 @@ def map_shard(ny: int, nx: int, itemsize: int = 4) -> tuple[tuple[int, int, int]
 def series_shape(t: int, ny: int, nx: int) -> tuple[tuple[int, int, int], tuple[int, int, int]]:
     """(inner chunk, shard) of the series layout for ``t`` epochs of an ``ny`` × ``nx`` map.
 
-    Shards span all epochs over s × s pixels, s the smallest power of two ≥ 16 that keeps the
-    cube within SERIES_OBJECTS shards; so shards grow with time, their count does not. A pixel's
-    history costs the shard index (16 B per inner chunk) plus one inner chunk of k pixels × t
-    values; k = 2s/√t minimises the sum (16·s²/k + 4·t·k bytes).
+    Shards span all epochs over s × s pixels, s the smallest power of two ≥ 8 that keeps the
+    cube within SERIES_OBJECTS + SERIES_OBJECTS_PER_EPOCH · t shards; so shards grow with time
+    and their count barely does. A pixel's history costs the shard index (16 B per inner chunk)
+    plus one inner chunk of k pixels × t values; k = 2s/√t minimises the sum (16·s²/k + 4·t·k
+    bytes). With few epochs the index dominates whatever s is: a pixel is then ~0.5 kB.
     """
-    s = 16
-    while len(CUBE_VARS) * math.ceil(ny / s) * math.ceil(nx / s) > SERIES_OBJECTS:
+    s = 8
+    while len(CUBE_VARS) * math.ceil(ny / s) * math.ceil(nx / s) > SERIES_OBJECTS + SERIES_OBJECTS_PER_EPOCH * t:
         s *= 2
     k = 2 * s / math.sqrt(max(1, t))
     bits = max(0, min(2 * int(math.log2(s)), round(math.log2(max(1.0, k)))))
