@@ -30,7 +30,7 @@ from archive.grids.spec import MAX_CELLS, overlapping_groups
 from archive.layout import ScanId
 from archive.ledger import Ledger
 from archive.points.hilbert import SiteGrid
-from archive.points.write import write_scan
+from archive.points.write import row_group_rows, write_scan
 from archive.sitefile import SiteFile, load_site_file
 from archive.records import ScanRecord
 from archive.sources import SourceError, open_points
@@ -40,7 +40,6 @@ from archive.timeutil import adjusted_gps_to_utc, utc_to_adjusted_gps
 
 CHUNK_POINTS = 2_000_000
 MEMORY_BUDGET = 768 * 2**20
-ROW_GROUP_POINTS = 262_144
 # names of temporary files and folders (the write path's temporary names, spill folders, cube
 # copies being built): whatever of them a killed run left is removed at the start and end of a run
 LEFTOVERS = ("*.part-*", "*.part", ".scanshelf-spill-*", "*.tmp-*", "*.partial")
@@ -67,7 +66,7 @@ class ScanTask:
     salvage: bool
     chunk_points: int = CHUNK_POINTS
     memory_budget: int = MEMORY_BUDGET
-    row_group_points: int = ROW_GROUP_POINTS
+    row_group_points: int | None = None  # None: from the scan's point count and footprint
     previews: bool = True
     grid_note: str | None = None
 
@@ -155,7 +154,7 @@ def migrate(
     catalog: bool = True,
     chunk_points: int = CHUNK_POINTS,
     memory_budget: int = MEMORY_BUDGET,
-    row_group_points: int = ROW_GROUP_POINTS,
+    row_group_points: int | None = None,
     workers: int | None = None,
     scheduler: str | None = None,
     memory_per_worker: int | None = None,
@@ -431,7 +430,7 @@ def _convert(task: ScanTask) -> ScanOutcome:
     try:
         written = write_scan(
             reader.chunks(task.chunk_points, salvage=task.salvage), str(temp), SiteGrid.from_dict(task.site_grid),
-            metadata=metadata, row_group_size=task.row_group_points, memory_budget=task.memory_budget,
+            metadata=metadata, row_group_size=task.row_group_points or row_group_rows(report.point_count, report.bounds), memory_budget=task.memory_budget,
             spill_dir=str(final.parent), on_sorted=feed,
         )
         crash_point("points.written")

@@ -7,6 +7,7 @@ import os
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
+import numcodecs
 import numpy as np
 import pytest
 import xarray as xr
@@ -30,6 +31,12 @@ def epoch(spec: GridSpec, level: float, seed: int):
     x = rng.uniform(spec.x0, spec.x1, n)
     y = rng.uniform(spec.y0, spec.y1, n)
     return bin_points(spec, x, y, level + 0.01 * (x - spec.x0) + rng.normal(0, 0.02, n))
+
+
+def quantized(values: np.ndarray) -> np.ndarray:
+    """What the store keeps of float32 values. # reference: numcodecs.Quantize(digits=3) itself"""
+    q = numcodecs.Quantize(digits=3, dtype="<f4")
+    return q.decode(q.encode(np.asarray(values, "<f4")))
 
 
 def sid(i: int) -> str:
@@ -90,7 +97,7 @@ def test_out_of_order_append_is_read_sorted_and_rewrite_replaces(cube):
     assert index == 1  # storage slot of sid(1)
     ds = open_cube(url)
     assert ds.sizes["time"] == 3
-    np.testing.assert_array_equal(ds["elevation"].sel(time=ds.time[-1]).values, again.elevation)
+    np.testing.assert_array_equal(ds["elevation"].sel(time=ds.time[-1]).values, quantized(again.elevation))
 
 
 def test_other_grid_is_refused(cube):
@@ -111,7 +118,9 @@ def test_series_copy_equals_the_map_layout_and_goes_stale(cube):
         for name in ("elevation", "point_count"):
             np.testing.assert_array_equal(raw[f"series/{name}"][window], maps[name].values[window])
     np.testing.assert_array_equal(series["elevation"][:, 40, 17].values, maps["elevation"][:, 40, 17].values)
-    assert zarr.open_group(url, mode="r")["series/elevation"].metadata.to_dict()["codecs"][0]["configuration"]["chunk_shape"] == (2, 1, 1)
+    meta = zarr.open_group(url, mode="r")["series/elevation"].metadata.to_dict()
+    assert meta["chunk_grid"]["configuration"]["chunk_shape"][0] == 2  # a shard holds every epoch
+    assert meta["codecs"][0]["configuration"]["chunk_shape"][0] == 2  # so does each inner chunk
     write_epoch(url, spec, T0 + timedelta(days=1), sid(1), epoch(spec, 90.0, 3))  # same scans, new values
     with pytest.raises(ValueError, match="stale"):
         open_cube(url, layout="series")
@@ -147,3 +156,41 @@ def test_cube_through_an_fsspec_url():
                                       ds["point_count"][:, 9, 9].values)
     finally:
         fsspec.filesystem("memory").rm("/scanshelf-test-cube", recursive=True)
+
+
+def test_elevations_go_through_a_stated_quantize_filter(cube):
+    url, spec = cube
+    # reference: the Zarr v3 array metadata as JSON, read without zarr-python
+    meta = json.loads(Path(url, "elevation", "zarr.json").read_text())
+    inner = meta["codecs"][0]["configuration"]["codecs"]
+    assert inner[0] == {"name": "numcodecs.quantize", "configuration": {"digits": 3, "dtype": "<f4"}}
+    assert meta["data_type"] == "float32" and "Quantize(digits=3)" in meta["attributes"]["scanshelf:quantize"]
+    counts = json.loads(Path(url, "point_count", "zarr.json").read_text())["codecs"][0]["configuration"]["codecs"]
+    assert [c["name"] for c in counts] == ["bytes", "zstd"]  # integers stay exact
+    stored = zarr.open_group(url, mode="r")["elevation"][0]
+    np.testing.assert_array_equal(stored, quantized(epoch(spec, 100.0, 0).elevation))
+
+
+def test_empty_chunks_are_not_stored(tmp_path):
+    spec = GridSpec.from_bounds("north", (500000.0, 7650000.0, 500600.0, 7650600.0), cell=1.0, margin=0.0,
+                                crs_wkt=CRS.from_user_input(EPSG).to_wkt())
+    url = str(tmp_path / "c.zarr")
+    rng = np.random.default_rng(4)
+    x, y = rng.uniform(spec.x0, spec.x0 + 50, 5000), rng.uniform(spec.y0, spec.y0 + 50, 5000)  # one corner
+    write_epoch(url, spec, T0, sid(0), bin_points(spec, x, y, 100 + 0.01 * x))
+    write_epoch(url, spec, T0 + timedelta(days=1), sid(1), bin_points(spec, x[:0], y[:0], x[:0]))  # no points
+    shards = sorted(p.relative_to(url).as_posix() for p in Path(url, "elevation", "c").rglob("*") if p.is_file())
+    assert shards == ["elevation/c/0/0/0"]  # the empty epoch wrote no object
+    # reference: the sharding spec's index (16 B per inner chunk, then a CRC32C) at the shard's end
+    raw = Path(url, "elevation", "c", "0", "0", "0").read_bytes()
+    index = np.frombuffer(raw[-(16 * 9) - 4:-4], "<u8").reshape(-1, 2)
+    assert (index[:, 0] != 2**64 - 1).sum() == 1  # of 3 x 3 inner chunks, only the corner's is stored
+    write_series(url)
+    series = {p.relative_to(url).as_posix() for p in Path(url, "series", "elevation", "c").rglob("*") if p.is_file()}
+    # reference: the shard edge from the array's JSON metadata; the corner's rows and columns
+    edge = json.loads(Path(url, "series", "elevation", "zarr.json").read_text())["chunk_grid"]["configuration"]["chunk_shape"][1]
+    rows = {r // edge for r in range(spec.ny) if spec.y[r] < spec.y0 + 50}
+    cols = {c // edge for c in range(spec.nx) if spec.x[c] < spec.x0 + 50}
+    assert series == {f"series/elevation/c/0/{r}/{c}" for r in rows for c in cols}  # only shards with data
+    ds = xr.open_zarr(url, group="series", zarr_format=3, consolidated=True)
+    assert np.isnan(ds["elevation"][:, 300, 300].values).all() and int(ds["point_count"][:, 300, 300].sum()) == 0

@@ -2,15 +2,21 @@
 
 Two layouts live in one store, because no single chunking serves both common reads:
 
-* the root group ("map layout") holds one shard per epoch and variable — shard ``(1, NY, NX)``
-  split into inner chunks of ``(1, 256, 256)``. Reading one epoch's map is one object and almost
-  exactly its own bytes; appending an epoch only *adds* objects, so earlier epochs' chunks are
-  never rewritten.
+* the root group ("map layout") holds shards of one epoch — ``(1, SY, SX)`` with SY, SX the
+  map rounded up to whole inner chunks of ``(1, 256, 256)``, split only when a shard would hold
+  more than 16 MB of raw values (so an object is at most ~16 MB on the wire, and a map is one
+  or a few objects). Reading one epoch's map is one object and almost exactly its own bytes;
+  appending an epoch only *adds* objects (xarray's ``append_dim``), so earlier epochs' chunks
+  are never rewritten. Inner chunks with no data are not stored (``write_empty_chunks=False``).
 * the ``series`` group ("series layout") is a derived copy built by
-  :func:`archive.grids.series.write_series` after a batch of appends: shard ``(T, 16, 16)`` of
-  inner chunks ``(T, 1, 1)``, so one pixel's whole time series is one shard read — its 4 KiB
-  index plus one chunk of T values. :func:`open_cube` refuses it when it is stale (its scan
-  ids differ from the root's) or unfinished.
+  :func:`archive.grids.series.write_series` after a batch of appends: shards of all epochs over
+  a square of pixels, sized from the map and the number of epochs (see ``series_shape``), so
+  one pixel's whole time series is one shard index plus one small chunk. :func:`open_cube`
+  refuses it when it is stale (its scan ids differ from the root's) or unfinished.
+
+Elevations are float32 rounded by numcodecs' Quantize filter to ``QUANTIZE_DIGITS`` decimal
+places of a metre before zstd (the variable's ``scanshelf:quantize`` attribute says so): below
+the 1 mm scale of the scanners' coordinates, and it lets zstd drop the noise bits.
 
 Scans may arrive in any order (parallel or resumed migrations): steps are stored in arrival
 order with a ``scan_id`` coordinate along time, and :func:`open_cube` returns them sorted by
@@ -32,6 +38,7 @@ import xarray as xr
 import zarr
 from pyproj import CRS
 from zarr.codecs import ZstdCodec
+from zarr.codecs.numcodecs import Quantize
 
 from archive.grids.binning import EpochGrid
 from archive.grids.spec import GridSpec
@@ -41,11 +48,16 @@ SPEC_ATTR = "scanshelf:grid_spec"
 SERIES_GROUP = "series"
 SERIES_COMPLETE = "scanshelf:series_complete"
 MAP_CHUNK = 256  # inner chunk edge of the map layout (cells)
-SERIES_TILE = 16  # shard edge of the series layout (cells): 256 pixels per shard
+MAP_SHARD_BYTES = 16 << 20  # raw bytes of one map-layout shard at most (objects of ≤ ~16 MB)
+QUANTIZE_DIGITS = 3  # decimal places of a metre kept in elevation and elevation_std (≤ 0.5 mm error)
+SERIES_OBJECTS = 1536  # series-layout shards per station cube at most (3 variables) ...
+SERIES_OBJECTS_PER_EPOCH = 8  # ... plus this many per epoch: long records afford smaller shard indexes
 TIME_CHUNK = 4096  # 1-D time/scan_id coordinates: one small object, rewritten on append
 CUBE_VARS = ("elevation", "elevation_std", "point_count")
 
 warnings.filterwarnings("ignore", message="Consolidated metadata is currently not part", category=UserWarning)
+# the Quantize filter is a numcodecs codec (zarr-python and numcodecs read it; the attribute says so)
+warnings.filterwarnings("ignore", message="Numcodecs codecs are not in the Zarr version 3", category=UserWarning)
 
 VARIABLE_ATTRS = {
     "elevation": {
@@ -89,11 +101,23 @@ def coords_for(spec: GridSpec) -> dict:
     return {"x": x, "y": y, "spatial_ref": xr.Variable((), np.int64(0), spatial_ref_attrs(spec))}
 
 
+def quantize_attrs(name: str) -> dict:
+    """What a reader must know about the stored precision of a float variable."""
+    if name not in FLOAT_VARS:
+        return {}
+    step = 2.0 ** -math.ceil(QUANTIZE_DIGITS * math.log2(10))
+    return {"scanshelf:quantize": f"numcodecs Quantize(digits={QUANTIZE_DIGITS}): values rounded to multiples "
+                                  f"of 2^-{math.ceil(QUANTIZE_DIGITS * math.log2(10))} m; error <= {step / 2:.2e} m"}
+
+
+FLOAT_VARS = ("elevation", "elevation_std")
+
+
 def epoch_dataset(spec: GridSpec, time: datetime, scan_id: str, epoch: EpochGrid) -> xr.Dataset:
     """One time step as a CF-annotated dataset (time length 1)."""
     data = {}
     for name in CUBE_VARS:
-        attrs = dict(VARIABLE_ATTRS[name])
+        attrs = dict(VARIABLE_ATTRS[name]) | quantize_attrs(name)
         if spec.crs_wkt:
             attrs["grid_mapping"] = "spatial_ref"
         data[name] = (("time", "y", "x"), getattr(epoch, name)[np.newaxis], attrs)
@@ -109,11 +133,43 @@ def epoch_dataset(spec: GridSpec, time: datetime, scan_id: str, epoch: EpochGrid
     return ds
 
 
+def map_shard(ny: int, nx: int, itemsize: int = 4) -> tuple[tuple[int, int, int], tuple[int, int, int]]:
+    """(inner chunk, shard) of the map layout: whole map per epoch, halved until ≤ MAP_SHARD_BYTES."""
+    cy, cx = min(MAP_CHUNK, ny), min(MAP_CHUNK, nx)
+    sy, sx = math.ceil(ny / cy), math.ceil(nx / cx)  # in inner chunks
+    while sy * sx * cy * cx * itemsize > MAP_SHARD_BYTES and sy * sx > 1:
+        if sy >= sx:
+            sy = math.ceil(sy / 2)
+        else:
+            sx = math.ceil(sx / 2)
+    return (1, cy, cx), (1, sy * cy, sx * cx)
+
+
+def series_shape(t: int, ny: int, nx: int) -> tuple[tuple[int, int, int], tuple[int, int, int]]:
+    """(inner chunk, shard) of the series layout for ``t`` epochs of an ``ny`` × ``nx`` map.
+
+    Shards span all epochs over s × s pixels, s the smallest power of two ≥ 8 that keeps the
+    cube within SERIES_OBJECTS + SERIES_OBJECTS_PER_EPOCH · t shards; so shards grow with time
+    and their count barely does. A pixel's history costs the shard index (16 B per inner chunk)
+    plus one inner chunk of k pixels × t values; k = 2s/√t minimises the sum (16·s²/k + 4·t·k
+    bytes). With few epochs the index dominates whatever s is: a pixel is then ~0.5 kB.
+    """
+    s = 8
+    while len(CUBE_VARS) * math.ceil(ny / s) * math.ceil(nx / s) > SERIES_OBJECTS + SERIES_OBJECTS_PER_EPOCH * t:
+        s *= 2
+    k = 2 * s / math.sqrt(max(1, t))
+    bits = max(0, min(2 * int(math.log2(s)), round(math.log2(max(1.0, k)))))
+    cy = 2 ** (bits // 2)
+    cx = 2 ** (bits - bits // 2)
+    return (t, cy, cx), (t, s, s)
+
+
 def map_encoding(spec: GridSpec) -> dict:
-    """Map layout: one shard per epoch and variable, inner chunks (1, 256, 256)."""
-    cy, cx = min(MAP_CHUNK, spec.ny), min(MAP_CHUNK, spec.nx)
-    shard = (1, math.ceil(spec.ny / cy) * cy, math.ceil(spec.nx / cx) * cx)
-    enc = {v: {"chunks": (1, cy, cx), "shards": shard, "compressors": [ZstdCodec(level=3)]} for v in CUBE_VARS}
+    """Map layout: shards of one epoch (see ``map_shard``), inner chunks (1, 256, 256)."""
+    chunk, shard = map_shard(spec.ny, spec.nx)
+    enc = {v: {"chunks": chunk, "shards": shard, "compressors": [ZstdCodec(level=3)]} for v in CUBE_VARS}
+    for v in FLOAT_VARS:
+        enc[v]["filters"] = [Quantize(digits=QUANTIZE_DIGITS, dtype="<f4")]
     enc["point_count"]["fill_value"] = 0
     enc["time"] = {"chunks": (TIME_CHUNK,), "units": "seconds since 1970-01-01", "calendar": "proleptic_gregorian", "dtype": "int64"}
     enc["scan_id"] = {"chunks": (TIME_CHUNK,)}
@@ -170,7 +226,7 @@ def write_epoch(
         fs, path = _fs(cube_url, storage_options)
         suffix = f".tmp-{uuid.uuid4().hex[:8]}"
         step.to_zarr(zarr_store(cube_url.rstrip("/") + suffix, storage_options), zarr_format=3,
-                     consolidated=True, mode="w-", encoding=map_encoding(spec))
+                     consolidated=True, mode="w-", encoding=map_encoding(spec), write_empty_chunks=False)
         fs.mv(path.rstrip("/") + suffix, path, recursive=True)
         return 0
     if existing != spec:
@@ -187,10 +243,11 @@ def write_epoch(
         i = int(slot[0])
         step.drop_vars(["x", "y", "spatial_ref"]).to_zarr(
             zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True,
-            region={"time": slice(i, i + 1)},
+            region={"time": slice(i, i + 1)}, write_empty_chunks=False,
         )
         return i
-    step.to_zarr(zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True, append_dim="time")
+    step.to_zarr(zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True, append_dim="time",
+                 write_empty_chunks=False)
     return int(ids.size)
 
 
@@ -221,7 +278,9 @@ def open_cube(
     if layout == "series":
         try:
             ds = xr.open_zarr(zarr_store(url, storage_options), group=SERIES_GROUP, zarr_format=3,
-                              consolidated=True, chunks={"time": -1, "y": SERIES_TILE, "x": SERIES_TILE})
+                              consolidated=True, chunks=None)
+            _, shard = series_shape(ds.sizes["time"], ds.sizes["y"], ds.sizes["x"])
+            ds = ds.chunk({"time": -1, "y": shard[1], "x": shard[2]})
         except (FileNotFoundError, KeyError, zarr.errors.GroupNotFoundError) as e:
             raise ValueError(f"{url} has no series copy; build it with archive.grids.write_series") from e
         live = root["scan_id"].values

@@ -28,6 +28,41 @@ from .sort import COORDS, sorted_row_groups
 
 META_KEY = b"scanshelf"
 WRITE_BUFFER = 4 * 2**20  # bytes gathered before they are hashed and written
+STATISTICS = ("x", "y", "z", "gps_time", "time")  # the columns readers prune on; others' min/max only grow the footer
+
+# Row-group size (see row_group_rows): a read of a window fetches the footer plus every row group
+# whose min/max box meets the window. Measured on scan-like points (benchmarks/remote.py):
+FOOTER_BYTES_PER_GROUP = 720  # ~90 B of metadata per column chunk, 8 columns
+XYZ_BYTES_PER_POINT = 4.0  # x, y, z compressed (DELTA_BINARY_PACKED + zstd-1)
+BOX_SPREAD = 4.0  # fitted: a Hilbert range's min/max box meets windows more often than its cells do
+DESIGN_WINDOW = 20.0 * 20.0  # m²: the window rows are sized for (a slope failure, a building face)
+DESIGN_SHARE = 0.02  # window share used when the footprint is unknown
+MIN_ROWS, MAX_ROWS = 4096, 1 << 20  # below: encodings restart too often; above: pruning is moot
+
+
+def row_group_rows(points: int | None, bounds: tuple[float, ...] | None = None) -> int:
+    """Rows per row group for a scan of ``points`` over ``bounds`` (xmin, ymin, [zmin,] xmax, ymax, ...).
+
+    A window that covers a share w of the footprint reads about (√w + √(1/G))² of the points
+    when the scan is cut into G spatially tight (Hilbert) row groups, plus G footers' worth of
+    column-chunk metadata. Setting the derivative of the sum to zero gives
+    G = (s·N·b·√w / f)^(2/3) for N points, b bytes of x, y, z per point, f footer bytes per
+    group and s a fitted spread of a group's min/max box: ~290 groups for 1.5M points, ~1,950
+    for 30M, so small scans get small row groups and the footer stays a fraction of what a
+    window reads. w is a 20 m × 20 m window's share of
+    the footprint (2 % when the footprint is unknown).
+    """
+    if not points or points <= MIN_ROWS:
+        return MIN_ROWS
+    share = DESIGN_SHARE
+    if bounds is not None and len(bounds) in (4, 6):
+        n = len(bounds) // 2
+        area = max(0.0, bounds[n] - bounds[0]) * max(0.0, bounds[n + 1] - bounds[1])
+        if area > 0 and math.isfinite(area):
+            share = min(1.0, DESIGN_WINDOW / area)
+    groups = max(1.0, (BOX_SPREAD * points * XYZ_BYTES_PER_POINT * math.sqrt(share) / FOOTER_BYTES_PER_GROUP) ** (2 / 3))
+    rows = int(points / groups) // 1024 * 1024
+    return int(min(MAX_ROWS, max(MIN_ROWS, rows)))
 
 
 @dataclass(frozen=True)
@@ -60,7 +95,7 @@ class Encoding:
             "use_dictionary": dictionary or False,
             "column_encoding": encodings or None,
             "store_decimal_as_integer": True,
-            "write_statistics": True,
+            "write_statistics": [c for c in STATISTICS if c in schema.names],
         }
 
 

@@ -20,7 +20,8 @@ from fsspec import AbstractFileSystem
 from archive.points.coords import AxisEncoding, units_of
 
 FOOTER_GUESS = 64 * 1024  # one tail read holds the footer of typical scans
-COALESCE_GAP = 64 * 1024  # merge ranges closer than this: a request costs more than the gap
+COALESCE_GAP = 8 * 1024  # merge ranges closer than this: a request costs more than the gap; wider gaps
+# would pull in the other columns of the row groups between two wanted ranges
 AXES = ("x", "y", "z")
 
 BBox = tuple[float, float, float, float]
