@@ -4,12 +4,12 @@ The public API mirrors the command line: every command is one of these functions
 """
 
 from archive.grids.change import elevation_change
-from archive.migrate import MigrateResult, migrate
+from archive.migrate import MigrateOptions, MigrateResult, migrate
 from archive.publish import publish
 from archive.query import Scan, Scans, Shelf, open_shelf
 from archive.survey import SurveyResult, survey
 
 __all__ = [
-    "MigrateResult", "Scan", "Scans", "Shelf", "SurveyResult",
+    "MigrateOptions", "MigrateResult", "Scan", "Scans", "Shelf", "SurveyResult",
     "elevation_change", "migrate", "open_shelf", "publish", "survey",
 ]

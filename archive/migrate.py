@@ -140,68 +140,83 @@ class MigrateResult:
         return "\n".join(lines)
 
 
+@dataclass(frozen=True)
+class MigrateOptions:
+    """How a migration runs, apart from what it reads and where it writes.
+
+    One object from the command line (or ``watch``) down to the tasks, so the data flow shows
+    which setting reaches which stage.
+    """
+
+    salvage: bool = False  # convert the readable points of damaged files, marked partial
+    cell: float | None = None  # grid cell in metres; overrides the site file
+    storage_options: dict | None = None  # fsspec options of the source
+    progress: bool = False  # progress bars on stderr
+    previews: bool = True  # a PNG preview per scan
+    catalog: bool = True  # write the STAC catalog and the health page at the end
+    chunk_points: int = CHUNK_POINTS  # points read at a time
+    memory_budget: int = MEMORY_BUDGET  # bytes for one scan's sort before it spills to disk
+    row_group_points: int | None = None  # None: from the scan's point count and footprint
+    workers: int | None = None  # start a local dask cluster of this many workers
+    scheduler: str | None = None  # or use a running dask scheduler at this address
+    memory_per_worker: int | None = None  # bytes per dask worker
+
+
 def migrate(
     source: str,
     shelf: str,
     site_file: SiteFile | str | None = None,
     crs: str | None = None,
     *,
-    salvage: bool = False,
-    cell: float | None = None,
-    storage_options: dict | None = None,
-    progress: bool = False,
-    previews: bool = True,
-    catalog: bool = True,
-    chunk_points: int = CHUNK_POINTS,
-    memory_budget: int = MEMORY_BUDGET,
-    row_group_points: int | None = None,
-    workers: int | None = None,
-    scheduler: str | None = None,
-    memory_per_worker: int | None = None,
+    options: MigrateOptions | None = None,
+    **settings,
 ) -> MigrateResult:
     """Convert every scan and grid of ``source`` into the local shelf folder ``shelf``.
 
     Re-running skips what the ledger records as done (same checksum) and finishes the rest;
     a source file whose checksum changed is converted again and replaces its scan.
-    ``workers`` starts a local dask cluster, ``scheduler`` uses a running one (its workers must
-    see ``shelf`` at the same path, e.g. on a shared file system); each worker then keeps its
-    sort within ``memory_per_worker``.
+    ``settings`` are fields of :class:`MigrateOptions` (``migrate(src, shelf, salvage=True)``),
+    applied over ``options``. ``workers`` starts a local dask cluster, ``scheduler`` uses a running
+    one (its workers must see ``shelf`` at the same path, e.g. on a shared file system); each
+    worker then keeps its sort within ``memory_per_worker``.
     """
+    options = replace(options or MigrateOptions(), **settings)
     if not isinstance(site_file, SiteFile):
         site_file = load_site_file(site_file, crs)
     else:
         site_file = site_file.with_crs(crs)
-    if cell is not None:
-        site_file = replace(site_file, grid_cell=float(cell))
-    fs, root = filesystem(source, storage_options)
+    if options.cell is not None:
+        site_file = replace(site_file, grid_cell=float(options.cell))
+    fs, root = filesystem(source, options.storage_options)
     if not fs.exists(root):
         raise FileNotFoundError(f"source {source} does not exist")
     shelf_path = Path(shelf)
     shelf_path.mkdir(parents=True, exist_ok=True)
     _remove_leftovers(shelf_path)
     result = MigrateResult(shelf=str(shelf_path))
-    if workers or scheduler:
-        executor = DaskExecutor(workers, scheduler, memory_per_worker or DEFAULT_MEMORY_PER_WORKER)
-        memory_budget = min(memory_budget, int(executor.memory_per_worker * WORKER_SORT_SHARE))
+    if options.workers or options.scheduler:
+        executor = DaskExecutor(options.workers, options.scheduler,
+                                options.memory_per_worker or DEFAULT_MEMORY_PER_WORKER)
+        options = replace(options, memory_budget=min(options.memory_budget,
+                                                      int(executor.memory_per_worker * WORKER_SORT_SHARE)))
         result.dashboard = executor.dashboard_link
-        if progress and executor.dashboard_link:
+        if options.progress and executor.dashboard_link:
             print(f"dask dashboard: {executor.dashboard_link}")
     else:
         executor = SerialExecutor()
     try:
-        _run(source, fs, root, shelf_path, site_file, result, executor, salvage=salvage, storage_options=storage_options,
-             progress=progress, previews=previews, catalog=catalog, chunk_points=chunk_points,
-             memory_budget=memory_budget, row_group_points=row_group_points)
+        _run(source, fs, root, shelf_path, site_file, result, executor, options)
     finally:
         executor.close()
     _remove_leftovers(shelf_path)  # a worker killed mid-scan leaves its temporary file; the scan was redone
     return result
 
 
-def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: MigrateResult, executor, *, salvage,
-         storage_options, progress, previews, catalog, chunk_points, memory_budget, row_group_points) -> None:
+def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: MigrateResult, executor,
+         options: MigrateOptions) -> None:
+    salvage, storage_options = options.salvage, options.storage_options
     with Ledger(shelf_path / layout.LEDGER) as ledger:
-        reports = _survey(fs, root, site_file, ledger, executor, progress)
+        reports = _survey(fs, root, site_file, ledger, executor, options.progress)
         _write_survey(shelf_path, source, reports)
         result.notes = grouped_notes(reports)
         crash_point("survey.written")
@@ -224,11 +239,11 @@ def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: Migrat
                     source=str(source), storage_options=storage_options or {}, path=join(root, report.relpath),
                     report=report, scan_id=scan_id, shelf=str(shelf_path), site_grid=site_grid.to_dict(),
                     grid_spec=grid_spec, site_file=site_file, salvage=salvage,
-                    chunk_points=chunk_points, memory_budget=memory_budget, row_group_points=row_group_points,
-                    previews=previews, grid_note=grid_note,
+                    chunk_points=options.chunk_points, memory_budget=options.memory_budget,
+                    row_group_points=options.row_group_points, previews=options.previews, grid_note=grid_note,
                 )
             )
-        bar = progress_bar(progress, total=sum(t.report.point_count or 0 for t in tasks), unit="pt", desc="migrate")
+        bar = progress_bar(options.progress, total=sum(t.report.point_count or 0 for t in tasks), unit="pt", desc="migrate")
         for task, outcome in executor.run(convert_scan, tasks):
             if isinstance(outcome, BaseException):
                 outcome = ScanOutcome(task.report.relpath, error=f"failed twice on the cluster: {outcome!r}")
@@ -239,7 +254,7 @@ def _run(source, fs, root, shelf_path: Path, site_file: SiteFile, result: Migrat
         _ingest_grids(fs, root, reports, site_file, shelf_path, ledger, result, storage_options)
         checksums = ledger.scan_checksums()
         result.scans_total = len(checksums)
-        if catalog and checksums:  # no scan converted yet: nothing to catalog; the summary says why
+        if options.catalog and checksums:  # no scan converted yet: nothing to catalog; the summary says why
             _write_catalog(shelf_path, checksums, result, site_file, ledger)
             if checksums and _report_stale(shelf_path):
                 from archive.report import write_index_html

@@ -12,10 +12,11 @@ import logging
 import re
 import time
 from collections.abc import Callable
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
 from archive import layout
+from archive.migrate import MigrateOptions, migrate
 from archive.sitefile import SiteFile
 
 log = logging.getLogger(__name__)
@@ -78,18 +79,21 @@ def watch(
     site_file: SiteFile | str | None = None,
     crs: str | None = None,
     *,
-    salvage: bool = False,
-    storage_options: dict | None = None,
+    options: MigrateOptions | None = None,
     publish_options: dict | None = None,
     report: bool = True,
     on_round: Callable[[RoundResult], None] | None = None,
+    **settings,
 ) -> WatchResult:
     """Run rounds every ``every`` seconds (or "10m") until ``rounds`` are done or Ctrl-C.
 
     Rounds start on a fixed beat (start + k × every); a round that overruns starts the next one
     at once. ``report`` rewrites the shelf's ``index.html`` when the catalog is newer than it,
     so a publish carries a current health page. ``on_round`` sees every finished round.
+    Each round is one ``migrate`` with ``options`` (``settings`` are MigrateOptions fields applied
+    over it, e.g. ``salvage=True``); ``publish_options`` are the destination's fsspec options.
     """
+    options = replace(options or MigrateOptions(), **settings)
     interval = parse_duration(every)
     result = WatchResult()
     failing: set[str] = set()
@@ -98,8 +102,7 @@ def watch(
     try:
         while rounds is None or number < rounds:
             number += 1
-            one = _round(number, source, shelf, publish_to, site_file, crs, salvage, storage_options,
-                         publish_options, report, failing)
+            one = _round(number, source, shelf, publish_to, site_file, crs, options, publish_options, report, failing)
             result.rounds.append(one)
             log.info("%s", one.line())
             if on_round is not None:
@@ -113,16 +116,13 @@ def watch(
     return result
 
 
-def _round(number: int, source: str, shelf: str, publish_to: str | None, site_file, crs, salvage: bool,
-           storage_options: dict | None, publish_options: dict | None, report: bool,
-           failing: set[str]) -> RoundResult:
-    from archive.migrate import migrate
-
+def _round(number: int, source: str, shelf: str, publish_to: str | None, site_file, crs, options: MigrateOptions,
+           publish_options: dict | None, report: bool, failing: set[str]) -> RoundResult:
     t0 = time.monotonic()
     one = RoundResult(number)
     problems_changed = False
     try:
-        migrated = migrate(source, shelf, site_file, crs, salvage=salvage, storage_options=storage_options)
+        migrated = migrate(source, shelf, site_file, crs, options=options)
     except UNREACHABLE as exc:
         one.errors.append(f"migrate: {type(exc).__name__}: {exc}")
     else:

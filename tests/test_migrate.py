@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import sqlite3
+from datetime import UTC, datetime
 from pathlib import Path
 
 import duckdb
@@ -159,3 +160,22 @@ def test_cli_exit_codes(small_source, tmp_path):
     out = runner.invoke(cli, ["migrate", str(clean), str(tmp_path / "shelf"), "-q"])
     assert out.exit_code == 0, out.output
     assert "converted 1 scans (1,000 points)" in out.output
+
+
+def test_options_object_and_keyword_settings_agree(tmp_path: Path) -> None:
+    # One MigrateOptions reaches every stage; keywords are applied over it, unknown ones refused.
+    from archive.migrate import MigrateOptions
+
+    src = tmp_path / "src"
+    factory.write_las(src / "north" / "scan_20260901_060000.las", n=10_000, when=datetime(2026, 9, 1, 6, tzinfo=UTC),
+                      seed=3)
+    base = MigrateOptions(previews=False, catalog=False, row_group_points=4_096)
+    a = migrate(str(src), str(tmp_path / "a"), crs="EPSG:32633", options=base)
+    b = migrate(str(src), str(tmp_path / "b"), crs="EPSG:32633", previews=False, catalog=False, row_group_points=4_096)
+    for shelf in ("a", "b"):
+        assert not (tmp_path / shelf / "previews").exists() and not (tmp_path / shelf / "catalog.json").exists()
+        (path,) = (tmp_path / shelf / "points").rglob("*.parquet")
+        assert pq.ParquetFile(path).metadata.row_group(0).num_rows == 4_096  # the option reached the writer
+    assert a.converted == b.converted == ["north-20260901T060000Z"]
+    with pytest.raises(TypeError):
+        migrate(str(src), str(tmp_path / "c"), options=base, no_such_setting=1)
