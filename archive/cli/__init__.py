@@ -16,7 +16,7 @@ from typing import NoReturn
 import click
 
 from archive.cli.catalog import catalog_command, verify_command
-from archive.cli.common import fail_cleanly
+from archive.cli.common import Group, fail_cleanly
 from archive.cli.demo import demo
 from archive.cli.grids import change_command, grid_command
 from archive.cli.points import migrate_command, survey_command
@@ -25,7 +25,7 @@ from archive.cli.query import extract, find
 from archive.cli.report import report_command, watch_command
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+@click.group(cls=Group, context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
 @click.version_option(package_name="scanshelf")
 @click.option("-v", "--verbose", count=True, help="More log output (-vv for debug).")
 def cli(verbose: int) -> None:
