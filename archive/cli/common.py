@@ -45,7 +45,7 @@ def _describe(exc: BaseException) -> str:
     """OSErrors carry the path apart from the text; KeyErrors quote their message."""
     if isinstance(exc, OSError) and exc.strerror and exc.filename:
         fix = {NotADirectoryError: "a file stands where a folder is needed; choose another path or move the file",
-               FileExistsError: "a file or folder is in the way; choose another path",
+               FileExistsError: "a file stands where a folder is needed (or the name is taken); choose another path",
                PermissionError: "no permission; choose a path you can write or change its permissions",
                IsADirectoryError: "a folder stands where a file is needed; give a file name",
                FileNotFoundError: "check the path"}.get(type(exc), "")
