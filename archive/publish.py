@@ -438,7 +438,7 @@ def _damaged(shelf: Shelf, local: dict[str, int], digests: dict[str, str], uploa
 
 def _manifest_bytes(entries: list[FileEntry]) -> bytes:
     buf = io.BytesIO()
-    pq.write_table(manifest_table(entries), buf, compression="zstd")
+    pq.write_table(manifest_table(entries), buf, compression="zstd", write_page_checksum=True, store_schema=False)
     return buf.getvalue()
 
 
