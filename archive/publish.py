@@ -257,9 +257,9 @@ def publish(
             raise PublishError(f"{shown}: {blocked} is a file, not a folder; give a folder or a URL as the destination",
                                permanent=True)
     if type(src_fs) is type(dst_fs) and src_root == dst_root:
-        raise PublishError(f"{shown}: the destination is the shelf itself; give another folder or bucket")
+        raise PublishError(f"{shown}: the destination is the shelf itself; give another folder or bucket", permanent=True)
     if not src_fs.exists(f"{src_root}/{layout.CATALOG}"):
-        raise PublishError(f"{shelf}: no {layout.CATALOG}; is this a shelf? run the migration first")
+        raise PublishError(f"{shelf}: no {layout.CATALOG}; is this a shelf? run the migration first", permanent=True)
 
     prefix = src_fs._strip_protocol(src_root).rstrip("/") + "/"
     local = {

@@ -13,8 +13,8 @@ from archive.cli.common import parse_storage_options, storage_option
 @click.command("grid")
 @click.argument("shelf", type=params.URL)
 @click.option("--cell", type=params.PositiveType("a cell size in metres, e.g. 0.5"), help="Cell size in metres (default: the existing cube's, else 1).")
-@click.option("--station", help="Only this station (default: every station with points).")
-@click.option("--margin", type=click.FloatRange(0, 1e6), default=10.0, show_default=True,
+@click.option("--station", type=params.STATION, help="Only this station (default: every station with points).")
+@click.option("--margin", type=params.FiniteRange(0, 1e6), default=10.0, show_default=True,
               help="Metres added around the points' bounds when a grid is derived anew.")
 @click.option("--no-series", is_flag=True, help="Skip the time-series copy (pixel histories read slower).")
 @click.option("--series-only", is_flag=True,
@@ -75,10 +75,10 @@ def _refresh_catalog(shelf: str, storage_options: dict) -> None:
 
 @click.command("change")
 @click.argument("shelf", type=params.URL)
-@click.option("--station", required=True, help="Station id.")
+@click.option("--station", required=True, type=params.STATION, help="Station id.")
 @click.option("--from", "t0", required=True, type=params.TIME, help="Time of the first epoch (ISO 8601, UTC); the nearest epoch is used.")
 @click.option("--to", "t1", required=True, type=params.TIME, help="Time of the second epoch; the nearest epoch is used.")
-@click.option("-o", "--output", required=True, type=params.URL, help="Output .zarr, .tif or .png (local path or fsspec URL).")
+@click.option("-o", "--output", required=True, type=params.OutputFile(".zarr", ".tif", ".tiff", ".png"), help="Output .zarr, .tif or .png (local path or fsspec URL).")
 @click.option("--stable-area", type=click.Path(exists=True, dir_okay=False),
               help="GeoJSON file (geometry, Feature or FeatureCollection) of ground that did not move, in the grid CRS.")
 @storage_option
@@ -97,8 +97,6 @@ def change_command(shelf, station, t0, t1, output, stable_area, storage_options)
     from archive.grids import elevation_change
 
     options = params.storage_options(storage_options, shelf)
-    if not output.lower().endswith((".zarr", ".tif", ".tiff", ".png")):
-        raise click.BadParameter(f"{output!r} must end in .zarr, .tif or .png", param_hint="-o/--output")
     area = None
     if stable_area:
         area = _read_area(stable_area)

@@ -179,3 +179,57 @@ def check_scheduler(ctx: click.Context, param: click.Parameter, value: str | Non
 
 
 BYTES = BytesType()
+
+
+class FiniteRange(click.FloatRange):
+    """click's FloatRange, which lets nan through (every comparison with nan is false)."""
+
+    def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None) -> float:
+        number = super().convert(value, param, ctx)
+        if not math.isfinite(number):
+            self.fail(f"{value!r} is not a finite number", param, ctx)
+        return number
+
+
+class StationType(click.ParamType):
+    """A station id as the shelf writes it: a letter or digit, then letters, digits, '_' and '.'."""
+
+    name = "ID"
+
+    def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None) -> str:
+        import re
+
+        if not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_.]*", str(value)):
+            self.fail(f"{value!r} is not a station id (letters, digits, '_' and '.'); "
+                      "`scanshelf find SHELF` lists the stations", param, ctx)
+        return str(value)
+
+
+class OutputFile(click.ParamType):
+    """A file to write: one of ``suffixes``, not an existing folder, no file standing where a folder must be."""
+
+    name = "FILE"
+
+    def __init__(self, *suffixes: str) -> None:
+        self.suffixes = suffixes
+
+    def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None) -> str:
+        import os
+
+        text = URL.convert(value, param, ctx)
+        if not text.lower().endswith(self.suffixes):
+            self.fail(f"{text!r} must end in {', '.join(self.suffixes)}", param, ctx)
+        if "://" not in text or text.startswith("file://"):
+            path = os.path.abspath(text.removeprefix("file://"))
+            if os.path.isdir(path) and not path.endswith(".zarr"):
+                self.fail(f"{text!r} is a folder; give a file name, e.g. {os.path.join(text, 'out' + self.suffixes[0])}",
+                          param, ctx)
+            parent = os.path.dirname(path)
+            while parent and not os.path.exists(parent):
+                parent = os.path.dirname(parent)
+            if parent and not os.path.isdir(parent):
+                self.fail(f"{text!r}: {parent} is a file, not a folder; choose another path", param, ctx)
+        return text
+
+
+STATION = StationType()

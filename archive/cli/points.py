@@ -16,7 +16,7 @@ from archive.cli.common import crs_option, json_option, quiet_option, silence_wa
 @click.argument("source", type=params.URL)
 @site_option
 @crs_option
-@click.option("-o", "--output", default="survey.parquet", show_default=True, help="Where to write the survey table (Parquet).")
+@click.option("-o", "--output", default="survey.parquet", show_default=True, type=params.OutputFile(".parquet"), help="Where to write the survey table (Parquet).")
 @click.option("--quick", is_flag=True, help="Read headers only (no point pass): faster, finds less.")
 @storage_option
 @quiet_option

@@ -17,7 +17,7 @@ _common = [
     click.option("--crs", "old_crs", type=params.CRS, hidden=True),  # the old spelling of --bbox-crs
     click.option("--start", type=params.TIME, help="Earliest time, ISO 8601 (no zone = UTC)."),
     click.option("--end", type=params.TIME, help="Latest time, ISO 8601; a date alone means the end of that day."),
-    click.option("--station", multiple=True, help="Only these stations (repeatable)."),
+    click.option("--station", multiple=True, type=params.STATION, help="Only these stations (repeatable)."),
     storage_option,
 ]
 
@@ -91,7 +91,7 @@ def find(url, bbox, bbox_crs, old_crs, start, end, station, storage_options, as_
 @_with_common
 @click.option("--columns", help="Comma-separated columns to keep besides x, y, z (default: all).")
 @click.option("--bbox-fraction", type=params.PositiveType("a fraction of the area, e.g. 0.1", upper=1.0), help="Instead of --bbox: a centred box over this fraction of the scans' area.")
-@click.option("-o", "--output", "out", required=True, type=params.URL, help="Output file: .parquet, .las, .laz or .csv.")
+@click.option("-o", "--output", "out", required=True, type=params.OutputFile(".parquet", ".pq", ".las", ".laz", ".csv"), help="Output file: .parquet, .las, .laz or .csv.")
 @click.option("-q", "--quiet", is_flag=True, help="No progress bar and no warnings.")
 def extract(url, bbox, bbox_crs, old_crs, start, end, station, storage_options, columns, bbox_fraction, out,
             quiet) -> None:
@@ -111,8 +111,6 @@ def extract(url, bbox, bbox_crs, old_crs, start, end, station, storage_options, 
 
     if (bbox is None) == (bbox_fraction is None):
         raise click.UsageError("extract needs --bbox (or --bbox-fraction): subsets are what it is for")
-    if not out.lower().endswith((".parquet", ".las", ".laz", ".csv")):
-        raise click.BadParameter(f"{out!r} must end in .parquet, .las, .laz or .csv", param_hint="-o/--output")
     params.check_window(start, end)
     if quiet:
         silence_warnings()

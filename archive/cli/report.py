@@ -12,10 +12,10 @@ from archive.cli.common import crs_option, silence_warnings, site_option, storag
 
 @click.command("report")
 @click.argument("shelf", type=params.URL)
-@click.option("-o", "--output", default="report.html", show_default=True, type=params.URL,
+@click.option("-o", "--output", default="report.html", show_default=True, type=params.OutputFile(".html", ".htm"),
               help="HTML file to write (any fsspec URL; local files are written atomically).")
 @storage_option(help="fsspec storage option for reading SHELF (repeatable), e.g. anon=true.")
-@click.option("--gap-factor", default=1.5, show_default=True, type=click.FloatRange(min=1.0, max=1e6),
+@click.option("--gap-factor", default=1.5, show_default=True, type=params.FiniteRange(min=1.0, max=1e6),
               help="An interval longer than this many median intervals of a station counts as a gap.")
 @click.option("-q", "--quiet", is_flag=True, help="Print nothing on success, and no warnings.")
 @click.option("--json", "as_json", is_flag=True, help="Print the result as one JSON object (for scripts).")
@@ -36,8 +36,6 @@ def report_command(shelf: str, output: str, storage_options: tuple[tuple[str, ob
     """
     from archive.report import build_report
 
-    if not output.lower().endswith((".html", ".htm")):
-        raise click.BadParameter(f"{output!r} must end in .html", param_hint="-o/--output")
     if quiet or as_json:
         silence_warnings()
     result = build_report(shelf, output, params.storage_options(storage_options, shelf), gap_factor=gap_factor)
