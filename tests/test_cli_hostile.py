@@ -239,3 +239,67 @@ def test_the_installed_script_prints_no_traceback(world, args) -> None:
     assert run.returncode == 2, run.stderr
     assert "Traceback" not in run.stdout + run.stderr
     assert "error" in run.stderr.lower()
+
+
+def _example_boxes() -> list[tuple[str, tuple[float, ...], str | None]]:
+    """Every bounding box in README.md and in every command's --help: (where, box, its CRS option)."""
+    import re
+
+    texts = {"README.md": (ROOT / "README.md").read_text(encoding="utf-8")}
+    texts["scanshelf --help"] = CliRunner().invoke(cli, ["--help"]).output
+    for name in cli.commands:
+        texts[f"scanshelf {name} --help"] = CliRunner().invoke(cli, [name, "--help"]).output
+    number = r"(-?\d+(?:\.\d+)?)"
+    boxes = []
+    for where, text in texts.items():
+        for line in text.replace("\\\n", " ").splitlines():
+            for m in re.finditer(rf"--bbox {number} {number} {number} {number}", line):
+                crs = re.search(r"--bbox-crs (\S+)", line)
+                boxes.append((where, tuple(map(float, m.groups())), crs.group(1) if crs else None))
+            for m in re.finditer(rf"bbox=\({number}, {number}, {number}, {number}\)", line):
+                boxes.append((where, tuple(map(float, m.groups())), None))
+    return boxes
+
+
+def test_example_boxes_hit_the_demo_site(tmp_path) -> None:
+    """A newcomer who copies an example box onto the demo shelf gets scans, not "no scans match"."""
+    import laspy
+    from pyproj import Transformer
+
+    from archive.demo import make_demo
+
+    make_demo(tmp_path / "demo", points_per_scan=300, weeks=1, faults=False)
+    lo, hi = [float("inf")] * 2, [float("-inf")] * 2
+    for path in [*(tmp_path / "demo/source").rglob("*.la[sz]"), *(tmp_path / "demo/source").rglob("*.LA[SZ]")]:
+        header = laspy.read(path).header  # reference: laspy reads each file's bounds
+        lo = [min(lo[i], header.mins[i]) for i in range(2)]
+        hi = [max(hi[i], header.maxs[i]) for i in range(2)]
+    boxes = _example_boxes()
+    assert len(boxes) >= 6, boxes  # README (4) and the find, extract and group --help
+    for where, (xmin, ymin, xmax, ymax), crs in boxes:
+        if crs is not None:  # reference: pyproj maps the box into the demo's EPSG:32633
+            xmin, ymin, xmax, ymax = Transformer.from_crs(crs, "EPSG:32633", always_xy=True).transform_bounds(
+                xmin, ymin, xmax, ymax)
+        assert xmin < hi[0] and xmax > lo[0] and ymin < hi[1] and ymax > lo[1], (where, (xmin, ymin, xmax, ymax), lo, hi)
+
+
+def test_the_example_site_file_shows_every_field() -> None:
+    """examples/site.toml names every field of catalog_schema/site.schema.json (set or as a comment)."""
+    import json
+    import re
+
+    schema = json.loads((ROOT / "catalog_schema/site.schema.json").read_text())
+    text = (ROOT / "examples/site.toml").read_text()
+    names: set[str] = set()
+
+    def walk(node: dict) -> None:
+        for key, sub in node.get("properties", {}).items():
+            names.add(key)
+            walk(sub)
+        for sub in (node.get("additionalProperties"), node.get("items")):
+            if isinstance(sub, dict):
+                walk(sub)
+
+    walk(schema)
+    missing = sorted(n for n in names if not re.search(rf"(^|[\s\[.#]){re.escape(n)}\b", text, re.M))
+    assert not missing, missing

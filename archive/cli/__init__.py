@@ -38,7 +38,7 @@ def cli(verbose: int) -> None:
       scanshelf migrate ./demo/source ./shelf     # Parquet points, Zarr grids, STAC catalog
       scanshelf verify ./shelf                    # validate the catalog and checksums
       scanshelf publish ./shelf file:///srv/www/shelf
-      scanshelf find ./shelf --bbox 500100 7650100 500300 7650300
+      scanshelf find ./shelf --bbox 510900 7713500 511100 7713700
     """
     logging.basicConfig(level=[logging.WARNING, logging.INFO, logging.DEBUG][min(verbose, 2)],
                         format="%(levelname)s %(name)s: %(message)s")

@@ -69,9 +69,10 @@ def find(url, bbox, bbox_crs, old_crs, start, end, station, storage_options, as_
     Only the shelf's items index is read.
 
     \b
-    Example:
-      scanshelf find https://data.example.org/site-a --bbox 512050 5420050 512080 5420080 \\
-          --start 2026-03-01 --end 2026-03-07
+    Examples:
+      scanshelf find https://data.example.org/site-a --bbox 510900 7713500 511100 7713700 \\
+          --start 2026-09-28 --end 2026-10-04
+      scanshelf find ./shelf --bbox 15.279 69.530 15.284 69.532 --bbox-crs EPSG:4326
     """
     from archive.query import open_shelf
 
@@ -102,8 +103,8 @@ def extract(url, bbox, bbox_crs, old_crs, start, end, station, storage_options, 
 
     \b
     Example:
-      scanshelf extract https://data.example.org/site-a --bbox 512050 5420050 512080 5420080 \\
-          --start 2026-03-01 --columns intensity,classification -o subset.laz
+      scanshelf extract https://data.example.org/site-a --bbox 510900 7713500 511100 7713700 \\
+          --start 2026-09-28 --columns intensity,classification -o subset.laz
     """
     from tqdm import tqdm
 
