@@ -8,8 +8,6 @@ from __future__ import annotations
 import re
 from datetime import datetime, timedelta, timezone, tzinfo
 
-import numpy as np
-
 GPS_EPOCH = datetime(1980, 1, 6, tzinfo=timezone.utc)
 ADJUSTED_GPS_OFFSET = 1e9  # LAS "adjusted standard GPS time" = GPS seconds - 1e9 (ASPRS LAS 1.4)
 
@@ -52,23 +50,6 @@ def to_utc(value: datetime, zone: tzinfo = timezone.utc) -> datetime:
     if value.tzinfo is None:
         value = value.replace(tzinfo=zone)
     return value.astimezone(timezone.utc)
-
-
-def parse_time(value: str | datetime | np.datetime64, zone: tzinfo = timezone.utc) -> datetime:
-    """Accept datetimes, ISO 8601 strings and numpy datetime64; naive means ``zone``."""
-    if isinstance(value, np.datetime64):
-        value = datetime.fromtimestamp(value.astype("datetime64[us]").astype(np.int64) / 1e6, timezone.utc)
-    elif isinstance(value, str):
-        text = value.strip()
-        if text.endswith("Z"):
-            text = text[:-1] + "+00:00"
-        try:
-            value = datetime.fromisoformat(text)
-        except ValueError:
-            raise ValueError(f"{value!r} is not an ISO 8601 time such as 2026-09-01T06:00:00Z") from None
-    elif not isinstance(value, datetime):
-        raise TypeError(f"expected a datetime, ISO string or numpy datetime64, got {type(value).__name__}")
-    return to_utc(value, zone)
 
 
 _STAMP = re.compile(r"(\d{4})(\d{2})(\d{2})[_T](\d{2})(\d{2})(\d{2})")

@@ -303,3 +303,19 @@ def test_the_example_site_file_shows_every_field() -> None:
     walk(schema)
     missing = sorted(n for n in names if not re.search(rf"(^|[\s\[.#]){re.escape(n)}\b", text, re.M))
     assert not missing, missing
+
+
+def test_every_command_spells_its_options_the_same() -> None:
+    """-s/--storage-option KEY=VALUE wherever storage options are taken; --bbox-crs for the box's CRS."""
+    import re
+
+    for name, command in cli.commands.items():
+        text = re.sub(r"\s+", " ", CliRunner().invoke(cli, [name, "--help"]).output)
+        takes_options = any(p.name == "storage_options" for p in command.params)
+        assert ("-s, --storage-option KEY=VALUE" in text) == takes_options, name
+        if name in ("find", "extract"):
+            assert "--bbox-crs CRS" in text and " --crs " not in text, name
+        if name in ("survey", "migrate", "watch"):
+            assert "--crs CRS" in text and "--bbox-crs" not in text, name
+    watch = re.sub(r"\s+", " ", CliRunner().invoke(cli, ["watch", "--help"]).output)
+    assert "-p, --publish-option KEY=VALUE" in watch  # the destination's options, apart from the source's

@@ -7,7 +7,7 @@ import json
 import click
 
 from archive.cli import params
-from archive.cli.common import parse_storage_options, storage_option
+from archive.cli.common import storage_option
 
 
 @click.command("grid")
