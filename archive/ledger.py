@@ -95,6 +95,12 @@ class Ledger:
         self._db.executescript(SCHEMA)
 
     def close(self) -> None:
+        """Fold the write-ahead log back into the file, so no -wal/-shm files stay in the shelf."""
+        try:
+            self._db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+            self._db.execute("PRAGMA journal_mode=DELETE")
+        except sqlite3.OperationalError:  # another connection still reads: it leaves the log to the last one
+            pass
         self._db.close()
 
     def __enter__(self) -> "Ledger":

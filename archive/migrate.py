@@ -706,10 +706,9 @@ def _ingest_grids(fs, root, reports, site_file, shelf: Path, ledger: Ledger, res
             result.failed.append((report.relpath, why))
             ledger.record_file(report.relpath, status="failed", error=why, **common)
             continue
-        dest = getattr(ingested, "href", None) or getattr(ingested, "dest", None)
-        if str(dest) not in result.grids:
-            result.grids.append(str(dest))
-        ledger.record_file(report.relpath, status="done", outputs=(str(dest),), **common)
+        if ingested.dest not in result.grids:
+            result.grids.append(ingested.dest)
+        ledger.record_file(report.relpath, status="done", outputs=(ingested.dest,), **common)
 
 
 def _remove_leftovers(shelf: Path) -> None:

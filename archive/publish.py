@@ -60,10 +60,12 @@ class PublishError(RuntimeError):
     ``damaged`` the local files that no longer match the shelf's catalog.
     """
 
-    def __init__(self, message: str, missing: Iterable[str] = (), damaged: Iterable[str] = ()) -> None:
+    def __init__(self, message: str, missing: Iterable[str] = (), damaged: Iterable[str] = (),
+                 permanent: bool = False) -> None:
         super().__init__(message)
         self.missing = list(missing)
         self.damaged = list(damaged)
+        self.permanent = permanent  # a retry cannot help: the destination or its credentials must change
 
 
 @dataclass(frozen=True)
@@ -139,14 +141,39 @@ def _scrub(text: str, options: dict) -> str:
 
 
 def _retry(action: Callable[[], Any], retries: int, backoff: float) -> Any:
-    """``action()``, tried again after ``backoff``, 2×, 4×, ... seconds while it raises."""
+    """``action()``, tried again after ``backoff``, 2×, 4×, ... seconds while it raises a transient error."""
     for attempt in range(retries):
         try:
             return action()
-        except Exception:
-            if attempt == retries - 1:
+        except Exception as e:
+            if attempt == retries - 1 or permanent(e):
                 raise
             time.sleep(backoff * 2**attempt)
+
+
+_PERMANENT_CODES = {"AccessDenied", "InvalidAccessKeyId", "SignatureDoesNotMatch", "NoSuchBucket",
+                    "AllAccessDisabled", "AccountProblem", "InvalidBucketName", "403", "404", "401"}
+
+
+def permanent(e: BaseException) -> bool:
+    """Errors a retry cannot cure: a file where a folder must be, no permission, bad credentials,
+    a bucket that does not exist. Everything else (time-outs, 5xx, dropped connections) is transient."""
+    if isinstance(e, (NotADirectoryError, IsADirectoryError, PermissionError, FileExistsError)):
+        return True
+    status = getattr(e, "status", None) or getattr(e, "code", None)
+    if isinstance(status, int) and status in (401, 403, 404):
+        return True
+    response = getattr(e, "response", None)
+    code = response.get("Error", {}).get("Code") if isinstance(response, dict) else None
+    return str(code) in _PERMANENT_CODES
+
+
+def _ancestors(path: str) -> list[str]:
+    """``path`` and every folder above it, nearest first."""
+    out = [path]
+    while (parent := os.path.dirname(out[-1])) != out[-1]:
+        out.append(parent)
+    return out
 
 
 def _strings(obj: Any) -> Iterable[str]:
@@ -225,10 +252,15 @@ def publish(
     except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
         raise PublishError(f"{shown}: cannot open the destination: {_scrub(str(e), options)}") from None
     src_root, dst_root = src_root.rstrip("/"), dst_root.rstrip("/")
+    if isinstance(dst_fs, LocalFileSystem):
+        blocked = next((p for p in _ancestors(dst_root) if os.path.exists(p) and not os.path.isdir(p)), None)
+        if blocked is not None:
+            raise PublishError(f"{shown}: {blocked} is a file, not a folder; give a folder or a URL as the destination",
+                               permanent=True)
     if type(src_fs) is type(dst_fs) and src_root == dst_root:
-        raise PublishError(f"{shown}: the destination is the shelf itself; give another folder or bucket")
+        raise PublishError(f"{shown}: the destination is the shelf itself; give another folder or bucket", permanent=True)
     if not src_fs.exists(f"{src_root}/{layout.CATALOG}"):
-        raise PublishError(f"{shelf}: no {layout.CATALOG}; is this a shelf? run the migration first")
+        raise PublishError(f"{shelf}: no {layout.CATALOG}; is this a shelf? run the migration first", permanent=True)
 
     prefix = src_fs._strip_protocol(src_root).rstrip("/") + "/"
     local = {
@@ -244,7 +276,8 @@ def publish(
         remote_sizes = _retry(lambda: _remote_sizes(dst_fs, dst_root), retries, backoff)
         manifest = _remote_manifest(dst_fs, dst_root) if remote_sizes else {}
     except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
-        raise PublishError(f"{shown}: cannot list the destination: {_scrub(str(e), options)}") from None
+        raise PublishError(f"{shown}: cannot list the destination: {_scrub(str(e), options)}",
+                           permanent=permanent(e)) from None
 
     def unchanged(path: str) -> bool:
         if remote_sizes.get(path) != local[path]:
@@ -309,10 +342,14 @@ def publish(
             return f"{entry.path}: cannot read back: {type(e).__name__}: {_scrub(str(e), options)}"
         return None
 
+    stop: list[str] = []  # the first permanent error; every other upload then ends at once
+
     def send(entry: ManifestEntry) -> str | None:
         """Upload and read back until the copy verifies; the last problem if it never does."""
         problem = None
         for attempt in range(retries):
+            if stop:
+                return f"{entry.path}: not attempted"
             if attempt:
                 time.sleep(backoff * 2 ** (attempt - 1))
             try:
@@ -322,6 +359,9 @@ def publish(
                 problem = check(entry)
             except Exception as e:  # noqa: BLE001 (any backend error, scrubbed)
                 problem = f"{entry.path}: upload failed: {type(e).__name__}: {_scrub(str(e), options)}"
+                if permanent(e):
+                    stop.append(problem)
+                    return problem
             if problem is None:
                 crash_point("publish.file")
                 if progress is not None:
@@ -344,6 +384,13 @@ def publish(
             continue
         with ThreadPoolExecutor(max_workers=workers) as pool:
             problems = [(e.path, p) for e, p in zip(todo, pool.map(send, todo)) if p]
+        if stop:
+            raise PublishError(
+                f"{shown}: {stop[0]}\nA retry cannot cure this (no permission, bad credentials, a missing bucket, "
+                "or a file where a folder must be): fix the destination or its credentials, then publish again. "
+                "The root catalog was not written.",
+                missing=sorted(path for path, _ in problems), permanent=True,
+            )
         if problems:
             later = [e.path for e in entries if e.action == "upload" and phase_of(e.path) > phase]
             raise PublishError(
@@ -392,7 +439,7 @@ def _damaged(shelf: ShelfFiles, local: dict[str, int], digests: dict[str, str], 
 
 def _manifest_bytes(entries: list[ManifestEntry]) -> bytes:
     buf = io.BytesIO()
-    pq.write_table(manifest_table(entries), buf, compression="zstd")
+    pq.write_table(manifest_table(entries), buf, compression="zstd", write_page_checksum=True, store_schema=False)
     return buf.getvalue()
 
 

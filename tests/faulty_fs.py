@@ -7,7 +7,8 @@ tests can count them. Kinds:
 * ``error`` — the operation raises ``OSError`` and does nothing;
 * ``lands`` — a write is carried out and *then* raises (the client cannot tell it worked);
 * ``short`` — a read returns only the first half of the bytes asked for;
-* ``timeout`` — the operation raises ``TimeoutError`` and does nothing.
+* ``timeout`` — the operation raises ``TimeoutError`` and does nothing;
+* ``denied`` — the operation raises ``PermissionError`` (as a client does on 403), and does nothing.
 
 Extra storage options (``key=``, ``secret=``, ...) are accepted and kept, like a real client
 would; ``chatty=True`` makes error messages quote them, as careless clients do, so tests can
@@ -74,6 +75,8 @@ class FaultyFileSystem(AbstractFileSystem):
         said = f" (client options {self.options})" if self.chatty else ""
         if kind == "timeout":
             raise TimeoutError(f"{op} of {path} timed out{said}")
+        if kind == "denied":
+            raise PermissionError(13, f"Access Denied ({op}){said}", path)
         raise OSError(f"injected {op} failure on {path}{said}")
 
     # listing -----------------------------------------------------------------------------------
@@ -125,7 +128,7 @@ class FaultyFileSystem(AbstractFileSystem):
     def pipe_file(self, path, value, mode="overwrite", **kwargs):
         path = self._strip_protocol(path)
         kind = self.plan.fault("write", path)
-        if kind in ("error", "timeout"):
+        if kind in ("error", "timeout", "denied"):
             self._fail(kind, "write", path)
         if kind == "short":
             value = value[: len(value) // 2]  # a write that silently loses its tail

@@ -292,7 +292,13 @@ def test_item_fields(shelf) -> None:
     assert grid[0]["scanshelf:time_step"] == "2026-09-01T06:00:00Z"
     partial = _docs(root)[item_path(ScanId.parse(records[2].scan_id))]["properties"]
     assert partial["scanshelf:partial"] is True and partial["scanshelf:problems"]
-    # density: points per m² of the footprint (reference: pyproj.Geod geodesic area)
+    # density: points per m² of the footprint (reference: pyproj.Geod geodesic area on WGS84 of the
+    # Item's own lon/lat ring)
+    from pyproj import Geod
+
+    ring = item["geometry"]["coordinates"][0]
+    area, _ = Geod(ellps="WGS84").polygon_area_perimeter([c[0] for c in ring], [c[1] for c in ring])
+    assert p["pc:density"] == pytest.approx(p["pc:count"] / abs(area), rel=1e-9)
     assert 0.2 < p["pc:density"] < 2000 / (100 * 100) * 5
 
 

@@ -11,7 +11,7 @@ import jsonschema
 import pytest
 
 from archive.catalog import extensions as ext
-from archive.sitefile import parse_site_file
+from archive.sitefile import SiteFileError, parse_site_file
 
 ROOT = Path(__file__).resolve().parents[1]
 SCHEMAS = sorted((ROOT / "catalog_schema").rglob("*.json"))
@@ -77,9 +77,22 @@ def test_example_site_file_matches_its_schema() -> None:
     validator = jsonschema.Draft202012Validator(schema)
     assert not list(validator.iter_errors(data))
     parse_site_file(data, "examples/site.toml")  # the lead's loader accepts the same file
-    for bad in ({"grids": {"cell": 0}}, {"paths": {"station": "^([^/]+)/"}}, {"colour": "red"},
-                {"catalog": {"providers": [{"roles": ["producer"]}]}}):
+    bad_files = [
+        ({"grids": {"cell": 0}}, r"\[grids\.cell\] is 0, must be greater than 0"),
+        ({"paths": {"station": "^([^/]+)/"}}, r"\[paths\.station\] .* does not match"),
+        ({"colour": "red"}, r"unknown field\(s\) 'colour'"),
+        ({"catalog": {"providers": [{"roles": ["producer"]}]}}, r"'name' is a required property"),
+        ({"paths": {"include": "**/*.las"}}, r"\[paths\.include\] is '\*\*/\*\.las', must be a list"),
+        ({"grids": {"extent": {"north": 5}}}, r"\[grids\.extent\.north\] is 5, must be a list"),
+        ({"stations": {"a": {"id": "a", "origin": 5}}}, r"\[stations\.a\.origin\] is 5, must be a list"),
+        ({"stations": {"a": {"id": "a", "origin": [1, 2]}}}, r"\[stations\.a\.origin\] is \[1, 2\], must hold 3"),
+        ({"ascii": {"places": 3.5}}, r"\[ascii\.places\] is 3\.5, must be a whole number"),
+        ({"version": 2}, r"\[version\] is 2"),
+    ]
+    for bad, message in bad_files:
         assert list(validator.iter_errors(bad)), bad
+        with pytest.raises(SiteFileError, match=message):  # the loader refuses it too, and says why
+            parse_site_file(bad, "bad.toml")
 
 
 def _fields_missing(schema: dict, value: object, where: str, defs: dict) -> list[str]:

@@ -85,13 +85,26 @@ def test_duckdb_sees_the_same_points(small_source, small_shelf):
     assert total == sum(pq.ParquetFile(p).metadata.num_rows for p in (shelf / "points").rglob("*.parquet"))
 
 
-def test_row_groups_are_spatially_tight(small_shelf):
-    shelf, _, _ = small_shelf
-    path = next((shelf / "points").rglob("north-20260901T060000Z.parquet"))
-    meta = pq.ParquetFile(path).metadata
-    assert meta.num_row_groups >= 1
-    x = meta.schema.to_arrow_schema().get_field_index("x")
-    assert meta.row_group(0).column(x).statistics.has_min_max
+def test_row_groups_are_spatially_tight(tmp_path):
+    """Hilbert-sorted row groups each cover a small part of the scan: together about its area,
+    where groups in arrival order would each span nearly all of it (ten times the area)."""
+    from archive.migrate import migrate
+
+    factory.write_las(tmp_path / "source/north/a.las", 20_000, factory.utc(2026, 9, 1, 6), seed=5)
+    assert migrate(str(tmp_path / "source"), str(tmp_path / "shelf"), crs=factory.SITE_CRS, previews=False,
+                   row_group_points=2_000).ok
+    # reference: the scan's extent from its points as laspy reads them
+    las = laspy.read(tmp_path / "source/north/a.las")
+    scan_area = float((las.x.max() - las.x.min()) * (las.y.max() - las.y.min()))
+    meta = pq.ParquetFile(next((tmp_path / "shelf/points").rglob("*.parquet"))).metadata
+    assert meta.num_row_groups == 10
+    names = meta.schema.to_arrow_schema().names
+    areas = []
+    for g in range(meta.num_row_groups):  # reference: the Parquet footer's min/max statistics, read by pyarrow
+        sx, sy = (meta.row_group(g).column(names.index(c)).statistics for c in ("x", "y"))
+        areas.append(float(sx.max - sx.min) * float(sy.max - sy.min))
+    assert sum(areas) < 3 * scan_area, (sum(areas) / scan_area, areas)
+    assert max(areas) < 0.5 * scan_area
 
 
 def test_ledger_records_every_file(small_shelf):

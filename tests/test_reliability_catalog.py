@@ -30,7 +30,7 @@ def shelf(tmp_path_factory) -> Path:
 
     base = tmp_path_factory.mktemp("catalog")
     write_source(base / "source", "first")
-    assert migrate(str(base / "source"), str(base / "shelf"), crs=factory.SITE_CRS, previews=False).ok
+    assert migrate(str(base / "source"), str(base / "shelf"), crs=factory.SITE_CRS).ok  # with previews (PNG)
     return base / "shelf"
 
 
@@ -172,42 +172,102 @@ def test_sentinel_credentials_appear_nowhere_even_when_publish_fails(shelf, tmp_
 
 # --- bit rot ---------------------------------------------------------------------------------
 
-def _flip(path: Path, at: float = 0.5) -> None:
+def _flip(path: Path, at: float | int | str = 0.5) -> None:
+    """Flip the lowest bit of one byte: at a fraction of the file, at a byte offset (negative: from
+    the end), or at the middle occurrence of a character."""
     data = bytearray(path.read_bytes())
-    i = int(len(data) * at)
+    if isinstance(at, str):
+        hits = [i for i, b in enumerate(data) if b == ord(at)]
+        i = hits[len(hits) // 2]
+    else:
+        i = int(len(data) * at) if isinstance(at, float) else at % len(data)
     data[i] ^= 0x01
     path.write_bytes(bytes(data))
 
 
-ASSETS = {
-    "points": lambda root: next(root.rglob("points/station=north/**/*.parquet")),
-    "cube chunk": lambda root: root / "grids/north.zarr/elevation/c/0/0/0",
+def _parquet_regions(path: Path, column: str | None = None) -> dict[str, int]:
+    """Byte offsets inside each region of a Parquet file (reference: Apache Parquet file format:
+    "PAR1", column chunks, the Thrift footer, its 4-byte length, "PAR1")."""
+    import pyarrow.parquet as pq
+
+    meta = pq.ParquetFile(path).metadata
+    size = path.stat().st_size
+    footer = int.from_bytes(path.read_bytes()[-8:-4], "little")
+    chunk = meta.row_group(0).column(0 if column is None else meta.schema.names.index(column))
+    start = chunk.dictionary_page_offset or chunk.data_page_offset
+    return {
+        "header": 1,  # inside the leading magic
+        "data": start + chunk.total_compressed_size // 2,  # inside a column chunk's pages
+        "footer": size - 8 - footer // 2,  # inside the Thrift FileMetaData
+        "footer length": size - 6,
+    }
+
+
+def _regions() -> list[tuple[str, str, int | None]]:
+    """(object kind, region, offset or None for "decide from the file") for every kind the shelf holds."""
+    cases = []
+    for kind in ("points", "index"):
+        cases += [(kind, r, None) for r in ("header", "data", "footer", "footer length")]
+    cases += [("index", "item_json column", None)]
+    cases += [("cube chunk", "data", 0.5), ("cube metadata", "zarr.json", 0), ("cube metadata", "zarr.json", 0.5),
+              ("preview", "png header", 1), ("preview", "png data", 0.6),
+              ("item", "json start", 0), ("item", "json middle", 0.5), ("collection", "json quote", '"')]
+    return cases
+
+
+OBJECTS = {
+    "points": lambda root: sorted(root.rglob("points/station=north/**/*.parquet"))[0],
     "index": lambda root: root / "scans/items.parquet",
+    "cube chunk": lambda root: root / "grids/north.zarr/elevation/c/0/0/0",
+    "cube metadata": lambda root: root / "grids/north.zarr/elevation/zarr.json",
+    "preview": lambda root: sorted(root.rglob("*.png"))[0],
+    "item": lambda root: sorted(root.rglob("scans/items/north/*.json"))[0],
+    "collection": lambda root: root / "scans/collection.json",
 }
+ASSETS = {k: OBJECTS[k] for k in ("points", "cube chunk", "index")}
 
 
-@pytest.mark.parametrize("asset", list(ASSETS))
-@pytest.mark.parametrize("at", [0.3, 0.5])
-def test_verify_finds_a_flipped_byte_and_names_the_file(shelf, tmp_path, asset, at) -> None:
+@pytest.mark.parametrize(("kind", "region", "at"), _regions(), ids=lambda v: str(v))
+def test_verify_finds_a_flipped_byte_and_names_the_file(shelf, tmp_path, kind, region, at) -> None:
     from archive.catalog import verify_shelf
+    from archive.cli import cli
 
     root = _copy(shelf, tmp_path)
     assert verify_shelf(str(root)).ok
-    target = ASSETS[asset](root)
+    target = OBJECTS[kind](root)
+    if at is None:
+        regions = _parquet_regions(target, "item_json" if region == "item_json column" else None)
+        at = regions["data" if region == "item_json column" else region]
     _flip(target, at)
-    report = verify_shelf(str(root))
-    assert not report.ok
+    out = CliRunner().invoke(cli, ["verify", str(root)])
+    assert out.exit_code == 1, out.output
+    assert "Traceback" not in out.output
     rel = str(target.relative_to(root))
-    named = rel if asset != "cube chunk" else "grids/north.zarr"
-    assert any(named in p for p in report.problems), report.problems
+    # a JSON text carries no checksum: the index's copy of an Item tells its damage (by the Item's id)
+    named = {"cube chunk": "grids/north.zarr", "cube metadata": "grids/north.zarr"}.get(kind, rel)
+    assert (target.stem if region == "json middle" else named) in out.output, out.output
+    assert any(w in out.output for w in ("damaged", "not valid JSON", "differs")), out.output
 
 
-def test_verify_finds_a_flipped_byte_in_the_index_footer(shelf, tmp_path) -> None:
+def test_verify_finds_a_flipped_byte_in_the_manifest_of_a_published_copy(shelf, tmp_path) -> None:
     from archive.catalog import verify_shelf
+    from archive.publish import publish
 
     root = _copy(shelf, tmp_path)
-    _flip(root / "scans/items.parquet", 0.9)
-    assert any("scans/items.parquet" in p for p in verify_shelf(str(root)).problems)
+    dest = tmp_path / "published"
+    publish(str(root), str(dest))
+    assert verify_shelf(str(dest)).ok
+    data = (dest / "manifest.parquet").read_bytes()
+    regions = _parquet_regions(dest / "manifest.parquet")
+    # the Thrift footer has no checksum of its own: flip a byte of a column name it holds
+    footer_start = len(data) - 8 - int.from_bytes(data[-8:-4], "little")
+    regions["footer"] = data.index(b"sha256", footer_start) + 2  # in the schema, which names the columns
+    for region, at in regions.items():
+        copy = tmp_path / f"copy-{region.replace(' ', '-')}"
+        shutil.copytree(dest, copy)
+        _flip(copy / "manifest.parquet", at)
+        report = verify_shelf(str(copy))
+        assert not report.ok and any("manifest.parquet" in p for p in report.problems), (region, report.problems)
 
 
 def test_the_verify_command_exits_1_and_names_the_file(shelf, tmp_path) -> None:

@@ -110,7 +110,9 @@ def test_readers_get_a_clear_error_never_wrong_data(published, kind, target) -> 
         open_shelf(f"faulty://{published}", {"plan": plan}).find().read_points()
     assert plan.injected
     message = str(err.value)
-    assert any(part in message for part in ("catalog.json", "items.parquet", ".parquet")), message
+    # the error names the very file whose read failed (shelf-relative), not just any Parquet file
+    failed = {path.split(str(published).lstrip("/") + "/", 1)[-1] for _, _, path in plan.injected}
+    assert any(rel in message for rel in failed), (failed, message)
     assert good.num_rows == 11_000
 
 
@@ -136,3 +138,30 @@ def test_random_single_faults_while_reading_never_give_wrong_points(published) -
     assert outcomes["error"] > 0
     print(f"\nFIGURE read faults injected: 30 reads, {outcomes['error']} clear errors, "
           f"{outcomes['right']} right answers, 0 wrong answers")
+
+
+def test_publish_stops_at_once_on_a_permanent_error(shelf, tmp_path) -> None:
+    """Access denied cannot be cured by retrying: the first refusal ends the publish, with a message
+    that says so, instead of every file being tried again and again."""
+    from archive.publish import PublishError, publish
+
+    plan = FaultPlan([Rule("write", "denied", r"", -1)])
+    with pytest.raises(PublishError, match="A retry cannot cure this") as err:
+        publish(str(shelf), f"faulty://{tmp_path / 'dest'}", {"plan": plan}, workers=1, retries=4, **FAST)
+    assert err.value.permanent
+    assert len(plan.injected) == 1  # one refusal, no retries, no further files
+    assert not (tmp_path / "dest/catalog.json").exists()
+
+
+def test_publish_command_to_a_file_is_a_usage_error_at_once(shelf, tmp_path) -> None:
+    """`publish SHELF file`: one line, exit 2, no retries and no flood of warnings (even without -q)."""
+    from click.testing import CliRunner
+
+    from archive.cli import cli
+
+    blocker = tmp_path / "afile"
+    blocker.write_text("x")
+    for dest in (blocker, blocker / "sub"):
+        out = CliRunner().invoke(cli, ["publish", str(shelf), str(dest)])
+        assert out.exit_code == 2, out.output
+        assert "is a file, not a folder" in out.output and len(out.output.splitlines()) <= 3, out.output

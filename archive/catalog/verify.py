@@ -2,10 +2,13 @@
 
 A shelf read from elsewhere is untrusted, so every href is resolved inside the shelf root and
 anything absolute or escaping is reported rather than followed. Every problem names the file.
+An object whose size or checksum differs from the catalog's is reported damaged and never
+parsed; anything that still fails to parse is a finding, never a crash.
 """
 
 from __future__ import annotations
 
+import io
 import json
 from dataclasses import dataclass, field
 from typing import Any
@@ -16,7 +19,7 @@ from archive.catalog import schema
 from archive.catalog.grids import store_fingerprint
 from archive.catalog.index import index_table, read_index
 from archive.catalog.store import ShelfFiles, multihash_sha256, resolve_href
-from archive.layout import CATALOG, SCANS_INDEX
+from archive.layout import CATALOG, MANIFEST, SCANS_INDEX
 
 
 @dataclass
@@ -25,6 +28,7 @@ class VerifyReport:
 
     shelf: str
     problems: list[str] = field(default_factory=list)
+    damaged: set[str] = field(default_factory=set)  # shelf-relative files whose size or checksum differs
     documents: int = 0
     assets: int = 0
     bytes_checked: int = 0
@@ -69,31 +73,74 @@ def verify_shelf(
         if doc is None:
             continue
         report.documents += 1
-        report.problems += [f"{path}: {p}" for p in schema.validate(doc, online_validator)]
-        if doc.get("type") == "Feature":
-            items[path] = doc
-        for link in doc.get("links", []):
-            target = _resolve(path, link.get("href", ""), report)
-            if target is None:
-                continue
-            if link.get("rel") in ("child", "item"):
-                todo.append(target)
-            elif not shelf.exists(target):
-                report.problems.append(f"{path}: link rel={link.get('rel')} -> {target} does not exist")
-            elif "file:checksum" in link and not quick:
-                _check_link_file(shelf, target, link, report)
-        for key, asset in doc.get("assets", {}).items():
-            _check_asset(shelf, path, key, asset, doc, quick, report)
-    _check_index(shelf, items, report)
-    _check_orphans(shelf, items, report)
+        try:
+            _check_document(shelf, path, doc, items, todo, online_validator, quick, report)
+        except Exception as err:  # a damaged document of an unforeseen shape is a finding
+            report.problems.append(f"{path}: cannot be checked, damaged? ({type(err).__name__}: {err})")
+    for step in (_check_index, _check_orphans):
+        try:
+            step(shelf, items, report)
+        except Exception as err:  # noqa: BLE001 (same)
+            report.problems.append(f"{SCANS_INDEX if step is _check_index else 'scans/items'}: cannot be checked "
+                                   f"({type(err).__name__}: {err})")
+    if shelf.exists(MANIFEST):
+        _check_manifest(shelf, quick, report)
     return report
 
 
-def _json_or_none(text: str | None) -> Any:
+def _check_document(shelf: ShelfFiles, path: str, doc: Any, items: dict[str, dict[str, Any]], todo: list[str],
+                    online_validator: Any, quick: bool, report: VerifyReport) -> None:
+    """Schemas, links and assets of one STAC document."""
+    if not isinstance(doc, dict):
+        report.problems.append(f"{path}: not a JSON object, damaged?")
+        return
+    report.problems += [f"{path}: {p}" for p in schema.validate(doc, online_validator)]
+    if doc.get("type") == "Feature":
+        items[path] = doc
+    links = doc.get("links", [])
+    for link in links if isinstance(links, list) else []:
+        if not isinstance(link, dict):
+            continue  # the schema check above has reported it
+        target = _resolve(path, link.get("href", ""), report)
+        if target is None:
+            continue
+        if link.get("rel") in ("child", "item"):
+            todo.append(target)
+        elif not shelf.exists(target):
+            report.problems.append(f"{path}: link rel={link.get('rel')} -> {target} does not exist")
+        elif "file:checksum" in link and not quick:
+            _check_link_file(shelf, target, link, report)
+    assets = doc.get("assets", {})
+    for key, asset in assets.items() if isinstance(assets, dict) else ():
+        if isinstance(asset, dict):
+            _check_asset(shelf, path, key, asset, doc, quick, report)
+
+
+def _check_manifest(shelf: ShelfFiles, quick: bool, report: VerifyReport) -> None:
+    """A published copy's manifest.parquet: readable, and every file it lists has its size and SHA-256."""
     try:
-        return json.loads(text) if text is not None else None
-    except ValueError:
-        return None
+        data = shelf.read_bytes(MANIFEST)
+        if data[:4] != b"PAR1" or data[-4:] != b"PAR1":
+            raise ValueError("no Parquet magic bytes at its start and end")
+        table = pq.read_table(io.BytesIO(data), page_checksum_verification=True)  # CRCs written by publish
+        rows = list(zip(*(table.column(c).to_pylist() for c in ("path", "size", "sha256"))))
+    except Exception as err:  # noqa: BLE001 (a damaged manifest is a finding)
+        report.problems.append(f"{MANIFEST}: not readable, damaged? ({type(err).__name__}: {err})")
+        return
+    for rel, size, digest in rows:
+        if not isinstance(rel, str) or rel in report.damaged:
+            continue
+        try:
+            target = resolve_href(MANIFEST, rel)
+        except ValueError as err:
+            report.problems.append(f"{MANIFEST}: {err}")
+            continue
+        if not shelf.exists(target):
+            report.problems.append(f"{target}: listed in {MANIFEST} but missing")
+        elif shelf.size(target) != size:
+            report.problems.append(f"{target}: size {shelf.size(target)} bytes, {MANIFEST} says {size}")
+        elif not quick and shelf.sha256(target) != digest:
+            report.problems.append(f"{target}: checksum differs from {MANIFEST}'s; the file is damaged or was changed")
 
 
 def _check_link_file(shelf: ShelfFiles, target: str, link: dict[str, Any], report: VerifyReport) -> None:
@@ -105,8 +152,10 @@ def _check_link_file(shelf: ShelfFiles, target: str, link: dict[str, Any], repor
     data = shelf.read_bytes(target)
     if link.get("file:size") is not None and len(data) != link["file:size"]:
         report.problems.append(f"{target}: size {len(data)} bytes, catalog says {link['file:size']}")
+        report.damaged.add(target)
     elif multihash_sha256(hashlib.sha256(data).hexdigest()) != link["file:checksum"]:
         report.problems.append(f"{target}: checksum differs from the catalog's; the file is damaged or was changed")
+        report.damaged.add(target)
 
 
 def _check_orphans(shelf: ShelfFiles, items: dict[str, dict[str, Any]], report: VerifyReport) -> None:
@@ -163,10 +212,14 @@ def _check_asset(
         report.bytes_checked += size
     if "file:size" in asset and asset["file:size"] != size:
         report.problems.append(f"{where}: size is {size} bytes, catalog says {asset['file:size']}")
+        report.damaged.add(target)
     if expected_sum is None:
         report.problems.append(f"{where}: no checksum in the catalog")
     elif checksum is not None and checksum != expected_sum:
         report.problems.append(f"{where}: checksum differs from the catalog (file changed or damaged)")
+        report.damaged.add(target)
+    if target in report.damaged:
+        return  # never parse a damaged object
     if not quick and key == "points" and "pc:count" in doc.get("properties", {}):
         with shelf.fs.open(shelf.path(target), "rb") as f:
             try:
@@ -183,13 +236,16 @@ def _check_index(shelf: ShelfFiles, items: dict[str, dict[str, Any]], report: Ve
     if not shelf.exists(SCANS_INDEX):
         report.problems.append(f"{SCANS_INDEX}: missing")
         return
+    if SCANS_INDEX in report.damaged:
+        return  # reported as damaged; its columns would only repeat that
     try:
         table = read_index(shelf)
         meta = table.schema.metadata or {}
+        geo = json.loads(meta[b"geo"]) if b"geo" in meta else {}
     except Exception as err:
-        report.problems.append(f"{SCANS_INDEX}: not readable: {err}")
+        report.problems.append(f"{SCANS_INDEX}: not readable, damaged? ({type(err).__name__}: {err})")
         return
-    if b"geo" not in meta or "covering" not in json.loads(meta[b"geo"])["columns"]["geometry"]:
+    if "covering" not in geo.get("columns", {}).get("geometry", {}):
         report.problems.append(f"{SCANS_INDEX}: GeoParquet 'geo' metadata with a bbox covering is missing")
     if b"stac-geoparquet" not in meta:
         report.problems.append(f"{SCANS_INDEX}: 'stac-geoparquet' metadata is missing")
@@ -210,10 +266,13 @@ def _check_index(shelf: ShelfFiles, items: dict[str, dict[str, Any]], report: Ve
         if name not in table.column_names:
             report.problems.append(f"{SCANS_INDEX}: column {name!r} missing")
         elif name == "item_json":
-            got = [_json_or_none(t) for t in table.column(name).to_pylist()]
             want = [json.loads(t) for t in expected.column(name).to_pylist()]
-            for g, w in zip(got, want, strict=True):
-                if g != w:  # a damaged text (None) differs too
+            for text, w in zip(table.column(name).to_pylist(), want, strict=True):
+                try:
+                    same = json.loads(text) == w
+                except (ValueError, TypeError):
+                    same = False
+                if not same:
                     report.problems.append(f"{SCANS_INDEX}: item_json of {w['id']} differs from its Item JSON")
         elif table.column(name).to_pylist() != expected.column(name).to_pylist():
             report.problems.append(f"{SCANS_INDEX}: column {name!r} does not match the Item JSON files")

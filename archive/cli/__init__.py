@@ -16,7 +16,7 @@ from typing import NoReturn
 import click
 
 from archive.cli.catalog import catalog_command, verify_command
-from archive.cli.common import fail_cleanly
+from archive.cli.common import Group, fail_cleanly
 from archive.cli.demo import demo
 from archive.cli.grids import change_command, grid_command
 from archive.cli.points import migrate_command, survey_command
@@ -25,7 +25,7 @@ from archive.cli.query import extract, find
 from archive.cli.report import report_command, watch_command
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+@click.group(cls=Group, context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
 @click.version_option(package_name="scanshelf")
 @click.option("-v", "--verbose", count=True, help="More log output (-vv for debug).")
 def cli(verbose: int) -> None:
@@ -38,7 +38,7 @@ def cli(verbose: int) -> None:
       scanshelf migrate ./demo/source ./shelf     # Parquet points, Zarr grids, STAC catalog
       scanshelf verify ./shelf                    # validate the catalog and checksums
       scanshelf publish ./shelf file:///srv/www/shelf
-      scanshelf find ./shelf --bbox 500100 7650100 500300 7650300
+      scanshelf find ./shelf --bbox 510900 7713500 511100 7713700
     """
     logging.basicConfig(level=[logging.WARNING, logging.INFO, logging.DEBUG][min(verbose, 2)],
                         format="%(levelname)s %(name)s: %(message)s")

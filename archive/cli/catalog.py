@@ -7,7 +7,8 @@ import sys
 import click
 
 from archive.catalog import rebuild_catalog, verify_shelf
-from archive.cli.common import parse_storage_options, site_option, storage_option
+from archive.cli import params
+from archive.cli.common import site_option, storage_option
 from archive.sitefile import load_site_file
 
 
@@ -35,7 +36,7 @@ def catalog_command(shelf: str, site_file: str | None) -> None:
 
 
 @click.command("verify")
-@click.argument("shelf")
+@click.argument("shelf", type=params.URL)
 @click.option("--online", is_flag=True, help="Also validate against the official extension schemas by URL.")
 @click.option("--quick", is_flag=True, help="Compare file sizes only (no checksums, no point counts).")
 @storage_option
@@ -51,8 +52,8 @@ def verify_command(shelf: str, online: bool, quick: bool, storage_options: tuple
     Examples:
       scanshelf verify ./site-shelf
       scanshelf verify ./site-shelf --quick
-      scanshelf verify s3://bucket/site-shelf --storage-option endpoint_url=http://127.0.0.1:9000
+      scanshelf verify s3://bucket/site-shelf -s endpoint_url=http://127.0.0.1:9000
     """
-    report = verify_shelf(shelf, online=online, quick=quick, storage_options=parse_storage_options(storage_options))
+    report = verify_shelf(shelf, online=online, quick=quick, storage_options=params.storage_options(storage_options, shelf))
     click.echo(report.summary())
     sys.exit(0 if report.ok else 1)

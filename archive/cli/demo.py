@@ -11,15 +11,16 @@ from archive.demo import make_demo
 
 @click.command("demo")
 @click.argument("dest", default="scanshelf-demo", type=click.Path(file_okay=False))
-@click.option("--seed", default=20261202, show_default=True, help="Same seed, byte-identical files.")
-@click.option("--points", default=20_000, show_default=True, help="Points per scan.")
-@click.option("--total-points", type=int, default=None,
+@click.option("--seed", default=20261202, show_default=True, type=click.IntRange(0, 2**63 - 1),
+              help="Same seed, byte-identical files.")
+@click.option("--points", default=20_000, show_default=True, type=click.IntRange(100, 10**9), help="Points per scan.")
+@click.option("--total-points", type=click.IntRange(1000, 10**12), default=None,
               help="Total points over all scans (overrides --points; for benchmark-sized archives).")
-@click.option("--weeks", default=4, show_default=True, help="Weeks of scanning from 27 September.")
+@click.option("--weeks", default=4, show_default=True, type=click.IntRange(1, 520), help="Weeks of scanning from 27 September.")
 @click.option("--stations", default=2, show_default=True, type=click.IntRange(1, 2),
               help="1: the north scanner only; 2: north and south.")
 @click.option("--no-faults", is_flag=True, help="Leave out the planted faults.")
-@click.option("--workers", type=int, default=None, help="Processes writing scans (default: up to 2).")
+@click.option("--workers", type=click.IntRange(1, 512), default=None, help="Processes writing scans (default: up to 2).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing DEST/source.")
 def demo(dest, seed, points, total_points, weeks, stations, no_faults, workers, overwrite):
     """Write a messy legacy scan archive of a fictional glacier front, and its answer key.

@@ -6,14 +6,15 @@ import json
 
 import click
 
-from archive.cli.common import parse_storage_options, storage_option
+from archive.cli import params
+from archive.cli.common import storage_option
 
 
 @click.command("grid")
-@click.argument("shelf")
-@click.option("--cell", type=float, help="Cell size in metres (default: the existing cube's, else 1).")
-@click.option("--station", help="Only this station (default: every station with points).")
-@click.option("--margin", type=float, default=10.0, show_default=True,
+@click.argument("shelf", type=params.URL)
+@click.option("--cell", type=params.PositiveType("a cell size in metres, e.g. 0.5"), help="Cell size in metres (default: the existing cube's, else 1).")
+@click.option("--station", type=params.STATION, help="Only this station (default: every station with points).")
+@click.option("--margin", type=params.FiniteRange(0, 1e6), default=10.0, show_default=True,
               help="Metres added around the points' bounds when a grid is derived anew.")
 @click.option("--no-series", is_flag=True, help="Skip the time-series copy (pixel histories read slower).")
 @click.option("--series-only", is_flag=True,
@@ -37,27 +38,28 @@ def grid_command(shelf, cell, station, margin, no_series, series_only, storage_o
     """
     from archive.grids import grid_shelf, write_series
 
+    options = params.storage_options(storage_options, shelf)
     if series_only:
         from archive import layout
         from archive.storage import filesystem
 
-        fs, root = filesystem(shelf, parse_storage_options(storage_options))
+        fs, root = filesystem(shelf, options)
         cubes = [c for c in fs.glob(f"{root}/grids/*.zarr") if "-" not in c.rsplit("/", 1)[-1]]
         for cube in sorted(cubes):
             if station and not cube.endswith("/" + layout.grid_path(station)):
                 continue
-            write_series(cube if "://" not in shelf else fs.unstrip_protocol(cube), parse_storage_options(storage_options))
+            write_series(cube if "://" not in shelf else fs.unstrip_protocol(cube), options)
             click.echo(f"{cube}: time-series copy rebuilt")
-        _refresh_catalog(shelf, parse_storage_options(storage_options))
+        _refresh_catalog(shelf, options)
         return
 
     results = grid_shelf(shelf, cell=cell, station=station, margin=margin, series=not no_series,
-                         storage_options=parse_storage_options(storage_options))
+                         storage_options=options)
     for r in results:
         s = r.spec
         click.echo(f"{r.cube}: {r.scans} scans, {s.nx} x {s.ny} cells of {s.cell:g} m from "
                    f"({s.x0:.3f}, {s.y0:.3f}); {r.points} points binned, {r.outside} outside the grid")
-    _refresh_catalog(shelf, parse_storage_options(storage_options))
+    _refresh_catalog(shelf, options)
 
 
 def _refresh_catalog(shelf: str, storage_options: dict) -> None:
@@ -72,11 +74,11 @@ def _refresh_catalog(shelf: str, storage_options: dict) -> None:
 
 
 @click.command("change")
-@click.argument("shelf")
-@click.option("--station", required=True, help="Station id.")
-@click.option("--from", "t0", required=True, help="Time of the first epoch (ISO 8601, UTC); the nearest epoch is used.")
-@click.option("--to", "t1", required=True, help="Time of the second epoch; the nearest epoch is used.")
-@click.option("-o", "--output", required=True, help="Output .zarr, .tif or .png (local path or fsspec URL).")
+@click.argument("shelf", type=params.URL)
+@click.option("--station", required=True, type=params.STATION, help="Station id.")
+@click.option("--from", "t0", required=True, type=params.TIME, help="Time of the first epoch (ISO 8601, UTC); the nearest epoch is used.")
+@click.option("--to", "t1", required=True, type=params.TIME, help="Time of the second epoch; the nearest epoch is used.")
+@click.option("-o", "--output", required=True, type=params.OutputFile(".zarr", ".tif", ".tiff", ".png"), help="Output .zarr, .tif or .png (local path or fsspec URL).")
 @click.option("--stable-area", type=click.Path(exists=True, dir_okay=False),
               help="GeoJSON file (geometry, Feature or FeatureCollection) of ground that did not move, in the grid CRS.")
 @storage_option
@@ -94,16 +96,25 @@ def change_command(shelf, station, t0, t1, output, stable_area, storage_options)
     """
     from archive.grids import elevation_change
 
-    options = parse_storage_options(storage_options)
+    options = params.storage_options(storage_options, shelf)
     area = None
     if stable_area:
-        with open(stable_area, encoding="utf-8") as f:
-            area = _geometry_of(json.load(f), stable_area)
+        area = _read_area(stable_area)
     result = elevation_change(shelf, station, t0, t1, stable_area=area, storage_options=options)
     result.export(output, storage_options=options)
     for key, value in result.summary().items():
         click.echo(f"{key}: {value}")
     click.echo(f"written: {output}")
+
+
+def _read_area(path: str):
+    """The --stable-area file as one shapely geometry; a usage error names the file when it is not GeoJSON."""
+    try:
+        with open(path, encoding="utf-8") as f:
+            return _geometry_of(json.load(f), path)
+    except (ValueError, KeyError, TypeError, AttributeError) as exc:
+        raise click.BadParameter(f"{path}: not a GeoJSON geometry, Feature or FeatureCollection ({exc})",
+                                 param_hint="--stable-area") from None
 
 
 def _geometry_of(doc: dict, name: str):

@@ -8,16 +8,15 @@ import sys
 
 import click
 
-from archive.cli.common import (
-    crs_option, json_option, parse_storage_options, quiet_option, site_option, storage_option,
-)
+from archive.cli import params
+from archive.cli.common import crs_option, json_option, quiet_option, silence_warnings, site_option, storage_option
 
 
 @click.command("survey")
-@click.argument("source")
+@click.argument("source", type=params.URL)
 @site_option
 @crs_option
-@click.option("-o", "--output", default="survey.parquet", show_default=True, help="Where to write the survey table (Parquet).")
+@click.option("-o", "--output", default="survey.parquet", show_default=True, type=params.OutputFile(".parquet"), help="Where to write the survey table (Parquet).")
 @click.option("--quick", is_flag=True, help="Read headers only (no point pass): faster, finds less.")
 @storage_option
 @quiet_option
@@ -34,7 +33,9 @@ def survey_command(source, site_file, crs, output, quick, storage_options, quiet
     """
     from archive.survey import survey
 
-    result = survey(source, site_file, crs, storage_options=parse_storage_options(storage_options),
+    if quiet or as_json:
+        silence_warnings()
+    result = survey(source, site_file, crs, storage_options=params.storage_options(storage_options, source),
                     deep=not quick, progress=not (quiet or as_json))
     result.write(output)
     if as_json:
@@ -47,16 +48,16 @@ def survey_command(source, site_file, crs, output, quick, storage_options, quiet
 
 
 @click.command("migrate")
-@click.argument("source")
+@click.argument("source", type=params.URL)
 @click.argument("shelf", type=click.Path(file_okay=False))
 @site_option
 @crs_option
 @click.option("--salvage", is_flag=True, help="Convert the readable points of damaged files and mark those scans partial.")
-@click.option("--cell", type=float, help="Grid cell size in metres for the elevation cubes (default: the site file, else 1).")
+@click.option("--cell", type=params.PositiveType("a cell size in metres, e.g. 0.5"), help="Grid cell size in metres for the elevation cubes (default: the site file, else 1).")
 @click.option("--no-previews", is_flag=True, help="Do not render a preview PNG per scan.")
-@click.option("--workers", type=click.IntRange(1), help="Run on a local dask cluster with this many worker processes.")
-@click.option("--scheduler", metavar="ADDRESS", help="Run on an existing dask scheduler, e.g. tcp://10.0.0.5:8786.")
-@click.option("--memory-per-worker", default="1.5GiB", show_default=True,
+@click.option("--workers", type=click.IntRange(1, 512), help="Run on a local dask cluster with this many worker processes.")
+@click.option("--scheduler", metavar="ADDRESS", callback=params.check_scheduler, help="Run on an existing dask scheduler, e.g. tcp://10.0.0.5:8786.")
+@click.option("--memory-per-worker", default="1.5GiB", show_default=True, type=params.BYTES,
               help="Memory limit of each local worker; the sort of one scan stays within it.")
 @storage_option
 @quiet_option
@@ -80,13 +81,13 @@ def migrate_command(source, shelf, site_file, crs, salvage, cell, no_previews, w
       scanshelf migrate /mnt/labserver/tls /scratch/shelf --workers 2 --memory-per-worker 2GiB
       scanshelf migrate s3://lab-archive/tls /scratch/shelf --scheduler tcp://10.0.0.5:8786
     """
-    from dask.utils import parse_bytes
-
     from archive.migrate import migrate
 
+    if quiet or as_json:
+        silence_warnings()
     result = migrate(source, shelf, site_file, crs, salvage=salvage, cell=cell,
-                     storage_options=parse_storage_options(storage_options), progress=not (quiet or as_json),
+                     storage_options=params.storage_options(storage_options, source), progress=not (quiet or as_json),
                      previews=not no_previews, workers=workers, scheduler=scheduler,
-                     memory_per_worker=parse_bytes(memory_per_worker))
+                     memory_per_worker=memory_per_worker)
     click.echo(json.dumps(dataclasses.asdict(result) | {"ok": result.ok}) if as_json else result.summary())
     sys.exit(0 if result.ok else 1)

@@ -3,7 +3,7 @@
 Values are kept as stored (raw dtype, nodata as the Zarr fill value, scale/offset attributes
 untouched), with CF attributes and a ``spatial_ref`` grid mapping (CRS WKT and GDAL
 GeoTransform) so xarray, rioxarray and GDAL read them back on the same grid. Nothing is
-resampled unless the caller passes ``resample_to`` (the site file asks for it).
+resampled.
 
 Files stamped with a time in their name become one time step of ``grids/<station>-<product>.zarr``
 (later files of the same product and grid append; the same file again replaces its step).
@@ -25,7 +25,6 @@ from pyproj import CRS
 from zarr.codecs import ZstdCodec
 
 from archive.grids.cube import zarr_store
-from archive.grids.spec import GridSpec
 from archive.layout import check_station, grid_path
 from archive.sources.grids import COMPONENTS, grid_format, guess_product, local_copy, open_grid, time_from_name
 from archive.storage import filesystem
@@ -92,7 +91,7 @@ def _encoding(ds: xr.Dataset) -> dict:
     return enc
 
 
-def _prepare(ds: xr.Dataset, crs: CRS, product: str, source: str, resample_to: GridSpec | None) -> xr.Dataset:
+def _prepare(ds: xr.Dataset, crs: CRS, product: str, source: str) -> xr.Dataset:
     ds = ds.rename(_variable_names(ds, product))
     old_mapping = [c for c in ds.coords if ds[c].ndim == 0 and ("crs_wkt" in ds[c].attrs or "spatial_ref" in ds[c].attrs)]
     ds = ds.drop_vars(old_mapping)
@@ -115,11 +114,6 @@ def _prepare(ds: xr.Dataset, crs: CRS, product: str, source: str, resample_to: G
         ds["elevation"].attrs["comment"] = "units not stored in the source file; assumed from the CRS axis unit"
     ds = ds.rio.write_crs(crs, grid_mapping_name="spatial_ref")
     ds = ds.rio.write_transform(ds.rio.transform(recalc=True))
-    if resample_to is not None:
-        from rasterio.enums import Resampling
-
-        ds = ds.rio.reproject(resample_to.crs_wkt, shape=(resample_to.ny, resample_to.nx),
-                              transform=resample_to.transform, resampling=Resampling.bilinear)
     for v in ds.data_vars.values():
         v.attrs["grid_mapping"] = "spatial_ref"
     ds.attrs.update({"Conventions": "CF-1.10", "scanshelf:product": product, "scanshelf:source": source})
@@ -133,7 +127,6 @@ def ingest_grid(
     product: str | None = None,
     crs: str | None = None,
     time: datetime | None = None,
-    resample_to: GridSpec | None = None,
     storage_options: dict | None = None,
     shelf_storage_options: dict | None = None,
 ) -> IngestedGrid:
@@ -159,7 +152,7 @@ def ingest_grid(
             f"entry whose pattern matches this file (or pass --crs EPSG:xxxx)"
         )
     target_crs = CRS.from_user_input(file_crs.to_wkt() if file_crs is not None else crs)
-    ds = _prepare(ds, target_crs, product, source, resample_to)
+    ds = _prepare(ds, target_crs, product, source)
     if time is None:
         stamp = time_from_name(path_or_url)
         time = stamp.replace(tzinfo=timezone.utc) if stamp else None

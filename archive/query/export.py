@@ -13,6 +13,7 @@ import posixpath
 import tempfile
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from decimal import Decimal
 from typing import Any
 
 import numpy as np
@@ -111,6 +112,7 @@ def _write_atomic(out: str, options: dict | None, write: Callable[[str], None]) 
         os.close(fd)
         try:
             write(tmp)
+            os.chmod(tmp, 0o666 & ~_umask())  # mkstemp's 0600 is for secrets; an extract is an ordinary file
             os.replace(tmp, path)
         finally:
             if os.path.exists(tmp):
@@ -120,6 +122,13 @@ def _write_atomic(out: str, options: dict | None, write: Callable[[str], None]) 
         tmp = os.path.join(d, posixpath.basename(path))
         write(tmp)
         fs.put_file(tmp, path)
+
+
+def _umask() -> int:
+    """The process umask (read by setting and restoring it; Python has no getter)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def _write_parquet(table: pa.Table, path: str, axes, crs, meta: dict) -> None:
@@ -133,30 +142,53 @@ def _write_csv(table: pa.Table, path: str, axes, crs, meta: dict) -> None:
     pcsv.write_csv(table, path)  # decimals print as the exact stored digits
 
 
-def _las_axis(name: str, encs: list[AxisEncoding], units: list[np.ndarray]) -> tuple[AxisEncoding, np.ndarray]:
+def _las_axis(name: str, encs: list[AxisEncoding], units: list[np.ndarray], places: int,
+              ) -> tuple[AxisEncoding, np.ndarray]:
     """One LAS scale/offset for all scans and the int32 X of every point, exact or an error.
 
-    Scans that agree keep their own scale and offset (their integers round-trip). Text
-    sources (offset 0) get a round offset near the data so X fits 32 bits.
+    ASPRS LAS 1.4: X = (x - offset) / scale must be a signed 32-bit integer. Scans that share
+    one encoding whose integers fit keep it (their integers round-trip). Otherwise the scale
+    and offset come from the points themselves: the finest scale that every point is an exact
+    multiple of and whose 2^32 steps span the points, and a round offset near their centre.
+    ``units`` are the stored decimals of each scan, counted in 10^-``places``.
     """
+    scaled = np.concatenate(units).astype(np.int64)
     first = encs[0]
-    places = max(e.places for e in encs)
-    chosen = first if all(e == first for e in encs) else AxisEncoding(min(e.scale for e in encs), first.offset, places)
-    scaled = [u * 10 ** (chosen.places - e.places) for u, e in zip(units, encs)]
-    if chosen.offset == 0.0:
-        low = min(int(u.min()) for u in scaled if u.size)
-        if abs(low // chosen._step) >= 2**31:
-            chosen = AxisEncoding(chosen.scale, float(low // 10**chosen.places // 1000 * 1000), chosen.places)
-    diff = np.concatenate(scaled) - chosen._shift
-    if np.any(diff % chosen._step):
+    if all(e == first for e in encs) and scaled.size and first.places <= places:
+        diff = scaled - first._shift * 10 ** (places - first.places)
+        step = first._step * 10 ** (places - first.places)
+        if not np.any(diff % step):
+            raw = diff // step
+            if raw.min() >= -(2**31) and raw.max() < 2**31:
+                return first, raw.astype(np.int32)
+    if not scaled.size:
+        return first, np.zeros(0, np.int32)
+    low, high = int(scaled.min()), int(scaled.max())
+    common = int(np.gcd.reduce(scaled - low)) or 1  # every point is low + a multiple of this
+    steps = {10**k for k in range(places + 1)} | {common}
+    steps |= {e._step * 10 ** (places - e.places) for e in encs if e.places <= places}
+    span_limit = 2**32 - 1
+    fitting = sorted(s for s in steps if common % s == 0 and (high - low) // s <= span_limit)
+    if not fitting:
+        unit = Decimal(common).scaleb(-places)
         raise ValueError(
-            f"{name}: these scans use LAS scales that cannot share one file exactly; "
-            "extract per station, or to Parquet"
+            f"{name}: the points span {Decimal(high - low).scaleb(-places)} at a precision of {unit}, more than "
+            "LAS's 32-bit integers can hold exactly at one scale; extract a smaller box, or to .parquet or .csv "
+            "(which keep every digit)"
         )
-    raw = diff // chosen._step
-    if raw.size and (raw.min() < -(2**31) or raw.max() >= 2**31):
-        raise ValueError(f"{name}: coordinates do not fit LAS 32-bit integers at scale {chosen.scale}")
-    return chosen, raw.astype(np.int32)
+    step = fitting[0]
+    centre = low + step * (((high - low) // step) // 2)
+    shift = next((o for o in _round_offsets(centre, places) if (o - low) % step == 0
+                  and (high - o) // step < 2**31 and (o - low) // step <= 2**31), centre)
+    chosen = AxisEncoding(float(Decimal(step).scaleb(-places)), float(Decimal(shift).scaleb(-places)), places)
+    if chosen._step != step or chosen._shift != shift:  # a float that does not hold the decimal exactly
+        raise ValueError(f"{name}: no LAS scale and offset represent these coordinates exactly; extract to .parquet")
+    return chosen, ((scaled - shift) // step).astype(np.int32)
+
+
+def _round_offsets(centre: int, places: int) -> list[int]:
+    """Offsets near ``centre`` (in units of 10^-places), roundest first: whole kilometres, then metres, ..."""
+    return [round(centre / 10**k) * 10**k for k in range(places + 3, -1, -1)]
 
 
 def _write_las(table: pa.Table, path: str, axes, crs, meta: dict, compress: bool = False) -> None:
@@ -187,7 +219,7 @@ def _write_las(table: pa.Table, path: str, axes, crs, meta: dict, compress: bool
             continue
         units = np.split(units_of(table[name]), edges)
         encs = [a.get(name) or AxisEncoding.for_text(table[name].type.scale) for a in axes]
-        chosen, raw = _las_axis(name, encs, units)
+        chosen, raw = _las_axis(name, encs, units, table[name].type.scale)
         integers.append(raw)
         header.scales[axis_i], header.offsets[axis_i] = chosen.scale, chosen.offset
     if crs is not None:

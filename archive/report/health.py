@@ -24,7 +24,6 @@ from archive.hrefs import redact, safe_href
 from archive.storage import is_local
 
 GAP_FACTOR = 1.5  # an interval longer than this many median intervals is a gap (our own rule of thumb)
-PROBLEM_STATUSES = ("failed", "duplicate", "partial", "damaged", "unusable")
 
 
 @dataclass(frozen=True)
