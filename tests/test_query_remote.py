@@ -29,7 +29,7 @@ from tests.servers import CRS_CODE, _bbox_wgs84, _write_index, nginx, s3_endpoin
 
 CENTRE = (512_100.0, 5_420_100.0)
 RADIUS = 80.0
-N = 1_000_000
+N = 1_500_000  # points per scan: the small monitoring scan
 T0 = datetime(2026, 4, 1, 6, 0, tzinfo=UTC)
 # ~2 % of the scan's 160 m × 160 m bbox, off the station; edges at half-millimetres
 BOX = (CENTRE[0] - 44.0005, CENTRE[1] + 12.0005, CENTRE[0] - 21.3735, CENTRE[1] + 34.6275)
