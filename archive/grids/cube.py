@@ -125,7 +125,10 @@ def epoch_dataset(spec: GridSpec, time: datetime, scan_id: str, epoch: EpochGrid
                               {"units": "1", "long_name": "points of the scan outside the station grid (kept in the points archive)"})
     ds = xr.Dataset(data, coords=coords_for(spec))
     ds = ds.assign_coords(
-        time=xr.Variable("time", np.array([_utc(time)]), {"standard_name": "time", "long_name": "scan start time (UTC)"}),
+        # whole seconds, like the scan id: the cube stores time as int64 seconds (map_encoding), and a
+        # sub-second start (real GPS times have them) would otherwise switch the units mid-cube
+        time=xr.Variable("time", np.array([_utc(time).astype("datetime64[s]").astype("datetime64[ns]")]),
+                         {"standard_name": "time", "long_name": "scan start time (UTC), whole seconds"}),
         scan_id=xr.Variable("time", np.array([scan_id], dtype=object), {"long_name": "scan id"}),
     )
     ds.attrs = {"Conventions": "CF-1.10", "title": f"elevation cube of station {spec.station}",
