@@ -108,16 +108,6 @@ class Part:
         return Part(self.keys[idx], values, {k: v[idx] for k, v in self.valid.items()}, rows)
 
 
-def _concat(parts: list[Part], nullable: set[str]) -> Part:
-    rows = [p.rows for p in parts]
-    return Part(
-        np.concatenate([p.keys for p in parts]),
-        {k: np.concatenate([p.values[k] for p in parts]) for k in parts[0].values},
-        {k: np.concatenate([p.valid.get(k, np.ones(len(p), np.uint8)) for p in parts]) for k in nullable},
-        None if any(r is None for r in rows) else np.concatenate(rows),
-    )
-
-
 class _MemoryStore:
     """Chunks kept as they arrived, while they fit the budget: one bucket."""
 
@@ -302,26 +292,67 @@ def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
 
 
 def _gather(parts: list[Part], starts: np.ndarray, idx: np.ndarray, nullable: set[str]) -> Part:
-    """Rows at global positions `idx` of the concatenation of `parts` (ascending if several parts)."""
+    """Rows at global positions `idx` (any order) of the concatenation of `parts`."""
     if len(parts) == 1:
         return parts[0].take(idx)
-    cuts = np.searchsorted(idx, starts)
-    pieces = [p.take(idx[a:b] - s) for p, s, a, b in zip(parts, starts, cuts[:-1], cuts[1:]) if b > a]
-    return _concat(pieces, nullable)
+    which = np.searchsorted(starts[1:-1], idx, side="right")  # part of each row
+    picks = [(p, sel, idx[sel] - s) for k, (p, s) in enumerate(zip(parts, starts))
+             if (sel := np.flatnonzero(which == k)).size]
+
+    def pick(get) -> np.ndarray:
+        first = get(picks[0][0])
+        out = np.empty(len(idx), dtype=first.dtype)
+        for p, sel, local in picks:
+            out[sel] = get(p)[local]
+        return out
+
+    return Part(
+        pick(lambda p: p.keys),
+        {k: pick(lambda p, k=k: p.values[k]) for k in parts[0].values},
+        {k: pick(lambda p, k=k: p.valid.get(k, np.ones(len(p), np.uint8))) for k in nullable},
+        None if any(p.rows is None for p in parts) else pick(lambda p: p.rows),
+    )
+
+
+def _group_order(parts: list[Part], size: int, scan_order: bool) -> np.ndarray:
+    """Positions (in the concatenation of `parts`) in file order: consecutive runs of `size` are
+    the row groups (ranks in (key, position) order), each in arrival order, or in key order when
+    not `scan_order`.
+
+    Among equal keys position order is arrival order in both stores (see `_emit_groups`), so one
+    stable sort by key gives key order. For scan order, the group of every row comes from binning
+    (`_group_of_rows`); a stable counting sort by group (Arrow's) of the rows taken in arrival order
+    then gives every group in arrival order at once: spill buckets are first put in arrival order
+    by one packed sort of their arrival indices, memory buckets are in arrival order already.
+    """
+    if not scan_order:
+        return _packed_order(np.concatenate([p.keys for p in parts]) if len(parts) > 1 else parts[0].keys)
+    group = _group_of_rows(parts, size)
+    if all(p.rows is None for p in parts):
+        return pc.array_sort_indices(pa.array(group)).to_numpy().view(np.int64)
+    rows = np.concatenate([p.rows for p in parts])
+    arrival = _packed_order(rows - rows.min())
+    del rows
+    by_group = pc.array_sort_indices(pa.array(group[arrival])).to_numpy().view(np.int64)
+    return arrival[by_group]
 
 
 def _emit_groups(
-    buckets: Iterable[list[Part]], columns: list[_Column], nullable: set[str], size: int, scan_order: bool
+    buckets: Iterable[list[Part]], columns: list[_Column], nullable: set[str], size: int, scan_order: bool,
+    batch_rows: int,
 ) -> Iterator[pa.Table]:
-    """Cut each bucket into row groups of `size` rows; a bucket's last, partial group is carried
+    """Cut each bucket into row groups of `size` rows and yield them as tables of whole groups
+    (up to `batch_rows` rows each, at least one group); a bucket's last, partial group is carried
     into the next bucket (its keys are all lower), so only the file's last group is short.
 
     A spill bucket is in file order: runs in arrival order, each sorted by (key, arrival), so among
-    equal keys file order is arrival order and ranks need no reordering; only each group's rows
-    are put back in arrival order, in cache-sized pieces. The carry stays a separate part (no
-    copy of the bucket); its keys are all below the bucket's, so no ties cross the two.
+    equal keys file order is arrival order and ranks need no reordering. The carry stays a
+    separate part (no copy of the bucket); its keys are all below the bucket's, so no ties cross
+    the two. One permutation per bucket and one gather per column and batch: the cost does not
+    grow with the number of row groups.
     """
     schema = pa.schema([pa.field(c.name, c.type) for c in columns])
+    per = max(1, batch_rows // size) * size
     carry: Part | None = None
     for parts in buckets:
         parts = [p for p in parts if len(p)]
@@ -329,31 +360,19 @@ def _emit_groups(
             parts, carry = [carry, *parts], None
         if not parts:
             continue
-        group = _group_of_rows(parts, size)
-        order = pc.array_sort_indices(pa.array(group)).to_numpy().view(np.int64)
-        del group
+        order = _group_order(parts, size, scan_order)
         starts = np.cumsum([0] + [len(p) for p in parts])
         full = len(order) // size * size
-        for start in range(0, full, size):
-            rows = _arrival(_gather(parts, starts, order[start : start + size], nullable))
-            yield _table(rows, columns, schema, scan_order)
+        for start in range(0, full, per):
+            yield _table(_gather(parts, starts, order[start : min(full, start + per)], nullable), columns, schema)
         if full < len(order):
             carry = _gather(parts, starts, order[full:], nullable)
         parts = order = None  # type: ignore[assignment]  # free this bucket before the next is read
     if carry is not None:
-        yield _table(_arrival(carry), columns, schema, scan_order)
+        yield _table(carry, columns, schema)
 
 
-def _arrival(part: Part) -> Part:
-    """The rows in arrival order: a spill part's file order differs; memory parts are already so."""
-    if part.rows is None:
-        return part
-    return part.take(_packed_order(part.rows - part.rows.min()))
-
-
-def _table(part: Part, columns: list[_Column], schema: pa.Schema, scan_order: bool) -> pa.Table:
-    if not scan_order:
-        part = part.take(_packed_order(part.keys))
+def _table(part: Part, columns: list[_Column], schema: pa.Schema) -> pa.Table:
     arrays = [c.to_arrow(part.values[c.name], part.valid.get(c.name)) for c in columns]
     return pa.Table.from_arrays(arrays, schema=schema)
 
@@ -366,8 +385,11 @@ def sorted_row_groups(
     memory_budget: int = 512 * 2**20,
     spill_dir: str | None = None,
     scan_order: bool = True,
+    batch_rows: int = 1,
 ) -> Iterator[pa.Table]:
-    """Yield the points of `chunks` as row-group tables in Hilbert order of (x, y) on `grid`.
+    """Yield the points of `chunks` as tables of whole row groups in Hilbert order of (x, y) on
+    `grid`: one row group per table by default, or as many as fit `batch_rows` rows (a writer
+    splits them by `row_group_size`; fewer, larger tables cost less per row group).
 
     Memory stays near `memory_budget` whatever the scan's size (each chunk itself must fit).
     Spill files live in a fresh folder under `spill_dir` (default: the system temp folder) and are
@@ -409,7 +431,9 @@ def sorted_row_groups(
                 spill.add(part, rows)
             rows += len(part)
         store = memory if spill is None else spill
-        yield from _emit_groups(store.buckets(memory_budget), columns, store.nullable, row_group_size, scan_order)
+        yield from _emit_groups(
+            store.buckets(memory_budget), columns, store.nullable, row_group_size, scan_order, batch_rows
+        )
     finally:
         if spill is not None:
             spill.close()
