@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 
 from archive.points.coords import decimal_from_units, units_of
 from archive.points.hilbert import SiteGrid
-from archive.points.sort import Part, _group_of_rows
+from archive.points.sort import Part, _group_of_rows, _radix_order
 from archive.points.write import write_scan
 
 N = 61_000
@@ -238,6 +238,14 @@ def test_group_of_rows_equals_rank_in_a_full_sort(keys, size, cuts) -> None:
     rank = np.empty(len(k), dtype=np.int64)
     rank[np.argsort(k, kind="stable")] = np.arange(len(k))
     np.testing.assert_array_equal(_group_of_rows(parts, size), rank // size)
+
+
+@settings(max_examples=40, deadline=None)
+@given(values=st.lists(st.integers(0, 2**63 - 1), max_size=200), bits=st.integers(1, 63))
+def test_radix_order_is_a_stable_argsort(values, bits) -> None:
+    v = np.array(values, dtype=np.uint64) >> np.uint64(63 - bits)  # below 2^bits, many ties for few bits
+    # reference: numpy's stable argsort
+    np.testing.assert_array_equal(_radix_order(v, bits), np.argsort(v, kind="stable"))
 
 
 def test_an_error_in_on_sorted_propagates_and_cleans_up(tmp_path) -> None:

@@ -161,7 +161,7 @@ class _SpillStore:
             ones = np.ones(1 << 20, np.uint8)
             for start in range(0, self.count, ones.size):
                 self.files[f"__valid.{name}"].write(ones[: min(ones.size, self.count - start)].data)
-        order = _packed_order(part.keys)
+        order = _stable_order(part.keys)
         keys = part.keys[order]
         self.hist += np.bincount((keys >> self.hist_shift).astype(np.intp), minlength=self.hist.size)
         self._write("__key", keys.astype(self.key_dtype, copy=False))
@@ -246,17 +246,25 @@ def _cut(hist: np.ndarray, target: int) -> list[tuple[int, int]]:
     return list(zip(cuts[:-1], cuts[1:]))
 
 
-def _packed_order(keys: np.ndarray) -> np.ndarray:
-    """Stable argsort of non-negative integer keys by sorting (key << b | position) as one uint64,
-    several times faster than np.argsort; falls back to a stable argsort when it cannot pack."""
-    n = len(keys)
-    bits = max(1, int(n - 1).bit_length())
-    if n and int(keys.max()).bit_length() + bits <= 64:
-        packed = (keys.astype(np.uint64) << np.uint64(bits)) | np.arange(n, dtype=np.uint64)
-        packed.sort()
-        packed &= np.uint64((1 << bits) - 1)
-        return packed.astype(np.intp)
-    return np.argsort(keys, kind="stable")
+def _stable_order(keys: np.ndarray) -> np.ndarray:
+    """Stable argsort of non-negative integer keys (ties keep their positions)."""
+    return _radix_order(keys, int(keys.max()).bit_length() if len(keys) else 0)
+
+
+def _radix_order(values: np.ndarray, bits: int) -> np.ndarray:
+    """Stable argsort of non-negative integers below 2^bits: least-significant-digit passes of
+    numpy's radix sort on 16-bit digits, O(n) each. On scan keys two passes for 32 bits take half
+    the time of sorting (key << b | position) packed into one uint64."""
+    passes = max(1, -(-bits // 16))
+    width = -(-max(bits, 1) // passes)
+    order: np.ndarray | None = None
+    for i in range(passes):
+        v = values if order is None else values[order]
+        digit = ((v >> (i * width)) & ((1 << width) - 1)).astype(np.uint16)
+        step = np.argsort(digit, kind="stable")
+        order = step if order is None else order[step]
+    assert order is not None
+    return order
 
 
 def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
@@ -283,7 +291,7 @@ def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
         hits = [np.flatnonzero(straddle[b]) for b in bins]
         pos = np.concatenate([h + s for h, s in zip(hits, starts)])
         keys = np.concatenate([p.keys[h] for p, h in zip(parts, hits)])
-        order = np.argsort(keys, kind="stable")  # positions ascend, so ties keep arrival order
+        order = _stable_order(keys - keys.dtype.type(kmin))  # positions ascend, so ties keep arrival order
         pos, keys = pos[order], keys[order]
         sub_bins = ((keys - keys.dtype.type(kmin)) >> shift).astype(np.int64)
         within = np.arange(len(pos)) - np.searchsorted(sub_bins, sub_bins, side="left")
@@ -326,12 +334,12 @@ def _group_order(parts: list[Part], size: int, scan_order: bool) -> np.ndarray:
     by one packed sort of their arrival indices, memory buckets are in arrival order already.
     """
     if not scan_order:
-        return _packed_order(np.concatenate([p.keys for p in parts]) if len(parts) > 1 else parts[0].keys)
+        return _stable_order(np.concatenate([p.keys for p in parts]) if len(parts) > 1 else parts[0].keys)
     group = _group_of_rows(parts, size)
     if all(p.rows is None for p in parts):
         return pc.array_sort_indices(pa.array(group)).to_numpy().view(np.int64)
     rows = np.concatenate([p.rows for p in parts])
-    arrival = _packed_order(rows - rows.min())
+    arrival = _stable_order(rows - rows.min())
     del rows
     by_group = pc.array_sort_indices(pa.array(group[arrival])).to_numpy().view(np.int64)
     return arrival[by_group]
