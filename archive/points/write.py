@@ -28,7 +28,7 @@ from .sort import COORDS, sorted_row_groups
 
 META_KEY = b"scanshelf"
 WRITE_BUFFER = 4 * 2**20  # bytes gathered before they are hashed and written
-BATCH_ROWS = 1 << 20  # rows of whole row groups per write call: small groups cost per call, not per row
+BATCH_ROWS = 1 << 18  # rows of whole row groups per write call: small groups cost per call, not per row
 STATISTICS = ("x", "y", "z", "gps_time", "time")  # the columns readers prune on; others' min/max only grow the footer
 
 # Row-group size (see row_group_rows): a read of a window fetches the footer plus every row group
