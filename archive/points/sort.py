@@ -332,7 +332,7 @@ def _group_order(parts: list[Part], size: int, scan_order: bool) -> np.ndarray:
     stable sort by key gives key order. For scan order, the group of every row comes from binning
     (`_group_of_rows`); a stable counting sort by group (Arrow's) of the rows taken in arrival order
     then gives every group in arrival order at once: spill buckets are first put in arrival order
-    by one packed sort of their arrival indices, memory buckets are in arrival order already.
+    by one radix sort of their arrival indices, memory buckets are in arrival order already.
     """
     if not scan_order:
         return _stable_order(np.concatenate([p.keys for p in parts]) if len(parts) > 1 else parts[0].keys)
