@@ -9,6 +9,7 @@ from __future__ import annotations
 import fnmatch
 import functools
 import hashlib
+import io
 import re
 from collections import Counter
 from dataclasses import asdict, dataclass, field
@@ -27,6 +28,7 @@ from archive.storage import filesystem
 from archive.timeutil import adjusted_gps_to_utc, gps_week_to_utc, parse_stamp, path_time
 
 HASH_BLOCK = 8 << 20
+READ_BUFFER = 256 << 10  # small header reads through the hashing reader; point reads bypass it
 HEAD_BYTES = 4096
 
 
@@ -285,14 +287,86 @@ def file_sha256(fs, path: str) -> str:
     return digest.hexdigest()
 
 
+class _PrefixHash:
+    """SHA-256 of one file fed by the reads its inspection makes anyway, so the file is read once.
+
+    A read that extends the hashed prefix is hashed from where the prefix ends; reads behind it or
+    beyond it are not (a seek ahead leaves a gap), and `hexdigest` reads whatever no read covered.
+    Every byte is hashed once, in file order, whatever the readers do. Use `open` as the reader's
+    filesystem.
+    """
+
+    def __init__(self, fs, path: str) -> None:
+        self.fs, self.path = fs, path
+        self.digest = hashlib.sha256()
+        self.done = 0
+
+    def open(self, path: str, mode: str = "rb", **kwargs):
+        if path != self.path or mode != "rb":
+            return self.fs.open(path, mode, **kwargs)
+        return io.BufferedReader(_HashedFile(self.fs.open(path, "rb", **kwargs), self), buffer_size=READ_BUFFER)
+
+    def feed(self, position: int, data) -> None:
+        view = memoryview(data).cast("B")
+        if position <= self.done < position + len(view):
+            self.digest.update(view[self.done - position :])
+            self.done = position + len(view)
+
+    def hexdigest(self) -> str:
+        with self.fs.open(self.path, "rb") as fh:
+            fh.seek(self.done)
+            while block := fh.read(HASH_BLOCK):
+                self.feed(self.done, block)
+        return self.digest.hexdigest()
+
+
+class _HashedFile(io.RawIOBase):
+    """A read-only file that shows every byte it reads to a `_PrefixHash`."""
+
+    def __init__(self, raw, hashed: _PrefixHash) -> None:
+        self.raw, self.hashed, self.position = raw, hashed, 0
+
+    def readable(self) -> bool:
+        return True
+
+    def seekable(self) -> bool:
+        return True
+
+    def readinto(self, buffer) -> int:
+        view = memoryview(buffer).cast("B")
+        n = self.raw.readinto(view) or 0
+        self.hashed.feed(self.position, view[:n])
+        self.position += n
+        return n
+
+    def seek(self, offset: int, whence: int = io.SEEK_SET) -> int:
+        self.position = self.raw.seek(offset, whence)
+        return self.position
+
+    def tell(self) -> int:
+        return self.position
+
+    def close(self) -> None:
+        if not self.closed:
+            self.raw.close()
+        super().close()
+
+
 def inspect_file(fs, path: str, relpath: str, size: int, site_file: SiteFile, *, deep: bool = True, mtime=None) -> FileReport:
-    """Everything the survey reports about one file; never raises for a bad file."""
+    """Everything the survey reports about one file; never raises for a bad file.
+
+    The checksum comes from the same reads as the inspection (see `_PrefixHash`).
+    """
     report = FileReport(relpath=relpath, size=size, kind="other", mtime=mtime)
+    hashed = _PrefixHash(fs, path)
     try:
         with fs.open(path, "rb") as fh:
             head = fh.read(HEAD_BYTES)
+        hashed.feed(0, head)
         report.kind = classify(relpath, head)
-        report.sha256 = file_sha256(fs, path)
+        if report.kind in ("points", "grid"):
+            report = _inspect_kind(hashed if report.kind == "points" else fs, path, head, report, site_file, deep)
+        report.sha256 = hashed.hexdigest()
     except OSError as exc:
         report.status = "unusable"
         report.problems.append(f"cannot be read ({exc}); check permissions and the storage connection")
@@ -301,7 +375,11 @@ def inspect_file(fs, path: str, relpath: str, size: int, site_file: SiteFile, *,
         report.status = "ignored"
         if report.kind == "other":
             report.problems.append("not a point or grid file; ignored")
-        return report
+    return report
+
+
+def _inspect_kind(fs, path: str, head: bytes, report: FileReport, site_file: SiteFile, deep: bool) -> FileReport:
+    relpath = report.relpath
     try:
         rule = site_file.grid_rule(relpath) if report.kind == "grid" else None  # a [[grids.files]] station wins
         report.station = check_station(rule.station) if rule and rule.station else station_of(relpath, site_file)

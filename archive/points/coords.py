@@ -147,7 +147,7 @@ def decimal_from_units(units: np.ndarray, places: int) -> pa.Array:
     units = np.ascontiguousarray(units, dtype=np.int64)
     pairs = np.empty((units.size, 2), dtype=np.int64)
     pairs[:, 0] = units
-    pairs[:, 1] = units >> 63  # sign extension into the high word (little-endian two's complement)
+    np.right_shift(units, 63, out=pairs[:, 1])  # sign extension into the high word (little-endian two's complement)
     return pa.Array.from_buffers(pa.decimal128(MAX_DIGITS, places), units.size, [None, pa.py_buffer(pairs)])
 
 

@@ -32,6 +32,7 @@ COORDS = ("x", "y", "z")
 HIST_BITS = 20  # fine key prefix used to cut buckets: ~1e6 bins over the site
 BIN_BITS = 20  # bins per bucket when assigning rows to row groups
 SORT_OVERHEAD = 60  # bytes per row beyond the column data while a bucket is grouped (measured)
+SPILL_SORT_OVERHEAD = 100  # the same for spill buckets, which are also put in arrival order (measured: peak RSS of a 20M-point migrate)
 SAMPLE = 4096  # spill runs keep every SAMPLE-th key in memory
 
 
@@ -108,16 +109,6 @@ class Part:
         return Part(self.keys[idx], values, {k: v[idx] for k, v in self.valid.items()}, rows)
 
 
-def _concat(parts: list[Part], nullable: set[str]) -> Part:
-    rows = [p.rows for p in parts]
-    return Part(
-        np.concatenate([p.keys for p in parts]),
-        {k: np.concatenate([p.values[k] for p in parts]) for k in parts[0].values},
-        {k: np.concatenate([p.valid.get(k, np.ones(len(p), np.uint8)) for p in parts]) for k in nullable},
-        None if any(r is None for r in rows) else np.concatenate(rows),
-    )
-
-
 class _MemoryStore:
     """Chunks kept as they arrived, while they fit the budget: one bucket."""
 
@@ -171,7 +162,7 @@ class _SpillStore:
             ones = np.ones(1 << 20, np.uint8)
             for start in range(0, self.count, ones.size):
                 self.files[f"__valid.{name}"].write(ones[: min(ones.size, self.count - start)].data)
-        order = _packed_order(part.keys)
+        order = _stable_order(part.keys)
         keys = part.keys[order]
         self.hist += np.bincount((keys >> self.hist_shift).astype(np.intp), minlength=self.hist.size)
         self._write("__key", keys.astype(self.key_dtype, copy=False))
@@ -207,7 +198,7 @@ class _SpillStore:
             f.flush()
         if not self.count:
             return
-        target = max(1, budget // (_row_bytes(self.columns, self.nullable) + SORT_OVERHEAD))
+        target = max(1, budget // (_row_bytes(self.columns, self.nullable) + SPILL_SORT_OVERHEAD))
         for lo, hi in _cut(self.hist, target):
             segments = []
             for run, sample in zip(self.runs, self.samples):
@@ -256,17 +247,25 @@ def _cut(hist: np.ndarray, target: int) -> list[tuple[int, int]]:
     return list(zip(cuts[:-1], cuts[1:]))
 
 
-def _packed_order(keys: np.ndarray) -> np.ndarray:
-    """Stable argsort of non-negative integer keys by sorting (key << b | position) as one uint64,
-    several times faster than np.argsort; falls back to a stable argsort when it cannot pack."""
-    n = len(keys)
-    bits = max(1, int(n - 1).bit_length())
-    if n and int(keys.max()).bit_length() + bits <= 64:
-        packed = (keys.astype(np.uint64) << np.uint64(bits)) | np.arange(n, dtype=np.uint64)
-        packed.sort()
-        packed &= np.uint64((1 << bits) - 1)
-        return packed.astype(np.intp)
-    return np.argsort(keys, kind="stable")
+def _stable_order(keys: np.ndarray) -> np.ndarray:
+    """Stable argsort of non-negative integer keys (ties keep their positions)."""
+    return _radix_order(keys, int(keys.max()).bit_length() if len(keys) else 0)
+
+
+def _radix_order(values: np.ndarray, bits: int) -> np.ndarray:
+    """Stable argsort of non-negative integers below 2^bits: least-significant-digit passes of
+    numpy's radix sort on 16-bit digits, O(n) each. On scan keys two passes for 32 bits take half
+    the time of sorting (key << b | position) packed into one uint64."""
+    passes = max(1, -(-bits // 16))
+    width = -(-max(bits, 1) // passes)
+    order: np.ndarray | None = None
+    for i in range(passes):
+        digit = ((values >> (i * width)) & ((1 << width) - 1)).astype(np.uint16)
+        step = np.argsort(digit if order is None else digit[order], kind="stable")
+        del digit
+        order = step if order is None else order[step]
+    assert order is not None
+    return order
 
 
 def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
@@ -293,7 +292,7 @@ def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
         hits = [np.flatnonzero(straddle[b]) for b in bins]
         pos = np.concatenate([h + s for h, s in zip(hits, starts)])
         keys = np.concatenate([p.keys[h] for p, h in zip(parts, hits)])
-        order = np.argsort(keys, kind="stable")  # positions ascend, so ties keep arrival order
+        order = _stable_order(keys - keys.dtype.type(kmin))  # positions ascend, so ties keep arrival order
         pos, keys = pos[order], keys[order]
         sub_bins = ((keys - keys.dtype.type(kmin)) >> shift).astype(np.int64)
         within = np.arange(len(pos)) - np.searchsorted(sub_bins, sub_bins, side="left")
@@ -302,26 +301,68 @@ def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
 
 
 def _gather(parts: list[Part], starts: np.ndarray, idx: np.ndarray, nullable: set[str]) -> Part:
-    """Rows at global positions `idx` of the concatenation of `parts` (ascending if several parts)."""
+    """Rows at global positions `idx` (any order) of the concatenation of `parts`."""
     if len(parts) == 1:
         return parts[0].take(idx)
-    cuts = np.searchsorted(idx, starts)
-    pieces = [p.take(idx[a:b] - s) for p, s, a, b in zip(parts, starts, cuts[:-1], cuts[1:]) if b > a]
-    return _concat(pieces, nullable)
+    which = np.searchsorted(starts[1:-1], idx, side="right")  # part of each row
+    picks = [(p, sel, idx[sel] - s) for k, (p, s) in enumerate(zip(parts, starts))
+             if (sel := np.flatnonzero(which == k)).size]
+
+    def pick(get) -> np.ndarray:
+        first = get(picks[0][0])
+        out = np.empty(len(idx), dtype=first.dtype)
+        for p, sel, local in picks:
+            out[sel] = get(p)[local]
+        return out
+
+    return Part(
+        pick(lambda p: p.keys),
+        {k: pick(lambda p, k=k: p.values[k]) for k in parts[0].values},
+        {k: pick(lambda p, k=k: p.valid.get(k, np.ones(len(p), np.uint8))) for k in nullable},
+        None if any(p.rows is None for p in parts) else pick(lambda p: p.rows),
+    )
+
+
+def _group_order(parts: list[Part], size: int, scan_order: bool) -> np.ndarray:
+    """Positions (in the concatenation of `parts`) in file order: consecutive runs of `size` are
+    the row groups (ranks in (key, position) order), each in arrival order, or in key order when
+    not `scan_order`.
+
+    Among equal keys position order is arrival order in both stores (see `_emit_groups`), so one
+    stable sort by key gives key order. For scan order, the group of every row comes from binning
+    (`_group_of_rows`); a stable counting sort by group (Arrow's) of the rows taken in arrival order
+    then gives every group in arrival order at once: spill buckets are first put in arrival order
+    by one radix sort of their arrival indices, memory buckets are in arrival order already.
+    """
+    if not scan_order:
+        return _stable_order(np.concatenate([p.keys for p in parts]) if len(parts) > 1 else parts[0].keys)
+    group = _group_of_rows(parts, size)
+    if all(p.rows is None for p in parts):
+        return pc.array_sort_indices(pa.array(group)).to_numpy().view(np.int64)
+    rows = np.concatenate([p.rows for p in parts])
+    rows -= rows.min()
+    arrival = _stable_order(rows.astype(np.uint32) if int(rows.max()) < 2**32 else rows)
+    del rows
+    by_group = pc.array_sort_indices(pa.array(group[arrival])).to_numpy().view(np.int64)
+    return arrival[by_group]
 
 
 def _emit_groups(
-    buckets: Iterable[list[Part]], columns: list[_Column], nullable: set[str], size: int, scan_order: bool
+    buckets: Iterable[list[Part]], columns: list[_Column], nullable: set[str], size: int, scan_order: bool,
+    batch_rows: int,
 ) -> Iterator[pa.Table]:
-    """Cut each bucket into row groups of `size` rows; a bucket's last, partial group is carried
+    """Cut each bucket into row groups of `size` rows and yield them as tables of whole groups
+    (up to `batch_rows` rows each, at least one group); a bucket's last, partial group is carried
     into the next bucket (its keys are all lower), so only the file's last group is short.
 
     A spill bucket is in file order: runs in arrival order, each sorted by (key, arrival), so among
-    equal keys file order is arrival order and ranks need no reordering; only each group's rows
-    are put back in arrival order, in cache-sized pieces. The carry stays a separate part (no
-    copy of the bucket); its keys are all below the bucket's, so no ties cross the two.
+    equal keys file order is arrival order and ranks need no reordering. The carry stays a
+    separate part (no copy of the bucket); its keys are all below the bucket's, so no ties cross
+    the two. One permutation per bucket and one gather per column and batch: the cost does not
+    grow with the number of row groups.
     """
     schema = pa.schema([pa.field(c.name, c.type) for c in columns])
+    per = max(1, batch_rows // size) * size
     carry: Part | None = None
     for parts in buckets:
         parts = [p for p in parts if len(p)]
@@ -329,31 +370,19 @@ def _emit_groups(
             parts, carry = [carry, *parts], None
         if not parts:
             continue
-        group = _group_of_rows(parts, size)
-        order = pc.array_sort_indices(pa.array(group)).to_numpy().view(np.int64)
-        del group
+        order = _group_order(parts, size, scan_order)
         starts = np.cumsum([0] + [len(p) for p in parts])
         full = len(order) // size * size
-        for start in range(0, full, size):
-            rows = _arrival(_gather(parts, starts, order[start : start + size], nullable))
-            yield _table(rows, columns, schema, scan_order)
+        for start in range(0, full, per):
+            yield _table(_gather(parts, starts, order[start : min(full, start + per)], nullable), columns, schema)
         if full < len(order):
             carry = _gather(parts, starts, order[full:], nullable)
         parts = order = None  # type: ignore[assignment]  # free this bucket before the next is read
     if carry is not None:
-        yield _table(_arrival(carry), columns, schema, scan_order)
+        yield _table(carry, columns, schema)
 
 
-def _arrival(part: Part) -> Part:
-    """The rows in arrival order: a spill part's file order differs; memory parts are already so."""
-    if part.rows is None:
-        return part
-    return part.take(_packed_order(part.rows - part.rows.min()))
-
-
-def _table(part: Part, columns: list[_Column], schema: pa.Schema, scan_order: bool) -> pa.Table:
-    if not scan_order:
-        part = part.take(_packed_order(part.keys))
+def _table(part: Part, columns: list[_Column], schema: pa.Schema) -> pa.Table:
     arrays = [c.to_arrow(part.values[c.name], part.valid.get(c.name)) for c in columns]
     return pa.Table.from_arrays(arrays, schema=schema)
 
@@ -366,8 +395,11 @@ def sorted_row_groups(
     memory_budget: int = 512 * 2**20,
     spill_dir: str | None = None,
     scan_order: bool = True,
+    batch_rows: int = 1,
 ) -> Iterator[pa.Table]:
-    """Yield the points of `chunks` as row-group tables in Hilbert order of (x, y) on `grid`.
+    """Yield the points of `chunks` as tables of whole row groups in Hilbert order of (x, y) on
+    `grid`: one row group per table by default, or as many as fit `batch_rows` rows (a writer
+    splits them by `row_group_size`; fewer, larger tables cost less per row group).
 
     Memory stays near `memory_budget` whatever the scan's size (each chunk itself must fit).
     Spill files live in a fresh folder under `spill_dir` (default: the system temp folder) and are
@@ -409,7 +441,9 @@ def sorted_row_groups(
                 spill.add(part, rows)
             rows += len(part)
         store = memory if spill is None else spill
-        yield from _emit_groups(store.buckets(memory_budget), columns, store.nullable, row_group_size, scan_order)
+        yield from _emit_groups(
+            store.buckets(memory_budget), columns, store.nullable, row_group_size, scan_order, batch_rows
+        )
     finally:
         if spill is not None:
             spill.close()

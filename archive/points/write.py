@@ -28,6 +28,7 @@ from .sort import COORDS, sorted_row_groups
 
 META_KEY = b"scanshelf"
 WRITE_BUFFER = 4 * 2**20  # bytes gathered before they are hashed and written
+BATCH_ROWS = 1 << 18  # rows of whole row groups per write call: small groups cost per call, not per row
 STATISTICS = ("x", "y", "z", "gps_time", "time")  # the columns readers prune on; others' min/max only grow the footer
 
 # Row-group size (see row_group_rows): a read of a window fetches the footer plus every row group
@@ -133,12 +134,13 @@ def write_scan(
 
     `dest` is written exactly as named (the caller picks temporary names and renames).
     `metadata` becomes the file's key-value metadata; the JSON under b"scanshelf" (str, bytes or
-    dict) gains "site_grid", "row_group_size" and "row_order". `on_sorted` sees each row group
-    as it is written, so other products (grids, footprints) need no second read.
+    dict) gains "site_grid", "row_group_size" and "row_order". `on_sorted` sees every row once,
+    in file order, as it is written, so other products (grids, footprints) need no second read;
+    its tables hold whole row groups, several at a time when they are small (up to BATCH_ROWS rows).
     """
     groups = sorted_row_groups(
         chunks, grid, row_group_size=row_group_size, memory_budget=memory_budget,
-        spill_dir=spill_dir, scan_order=scan_order,
+        spill_dir=spill_dir, scan_order=scan_order, batch_rows=BATCH_ROWS,
     )
     stats: dict[str, _Moments] = {}
     rows = count = 0
@@ -155,11 +157,11 @@ def write_scan(
                     schema = table.schema.with_metadata(_metadata(metadata, grid, row_group_size, scan_order))
                     writer = pq.ParquetWriter(buffered, schema, **encoding.writer_options(schema))
                     stats = {f.name: _Moments() for f in schema if _has_moments(f)}
-                writer.write_table(table, row_group_size=len(table))
+                writer.write_table(table, row_group_size=row_group_size)  # whole groups: split exactly there
                 for name, m in stats.items():
                     m.add(_values(table.column(name)))
                 rows += len(table)
-                count += 1
+                count += -(-len(table) // row_group_size)
                 if on_sorted is not None:
                     on_sorted(table)
         finally:
