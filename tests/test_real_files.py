@@ -16,19 +16,19 @@ from archive.migrate import migrate
 REAL = Path(__file__).parent / "data" / "real"
 FILES = sorted(p.relative_to(REAL).as_posix() for p in REAL.rglob("*.la[sz]"))
 TIME_SOURCES = {  # what each file offers, best first (see archive.survey.TIME_SOURCES)
-    "gm/2014-12-10/test1_4.las": "gps",
-    "pylas/20210602/1_4_w_evlr.laz": "gps",
-    "terrascan/2025/04/29/append-bug.laz": "gps",
-    "autzen/2011-05-01/autzen.las": "gps_week",
-    "autzen_trim/autzen_trim.laz": "gps_week_header",
-    "pdal/2015-02-22/extrabytes.las": "gps_week",
-    "lastools/file_with_both_wkt_and_geotiff_vlrs.las": "gps",  # bit 0 clear, adjusted times
-    "plane/20180904/plane.laz": "gps_week",
-    "copc/2019/01/01/simple.copc.laz": "gps_week",
-    "lastools_1_1/2020-02-16/simple1_1.las": "gps_week",
-    "alsxx/simple1_3.las": "gps_week_header",
-    "laspy/unregistered_extra_bytes.las": "header_date",  # GPS times all zero
-    "siteco/vegetation_1_3.las": "gps_week_header",
+    "st01/2014-12-10/test1_4.las": "gps",
+    "st02/20210602/1_4_w_evlr.laz": "gps",
+    "st03/2025/04/29/append-bug.laz": "gps",
+    "st04/2011-05-01/autzen.las": "gps_week",
+    "st05/autzen_trim.laz": "gps_week_header",
+    "st06/2015-02-22/extrabytes.las": "gps_week",
+    "st07/file_with_both_wkt_and_geotiff_vlrs.las": "gps",  # bit 0 clear, adjusted times
+    "st08/20180904/plane.laz": "gps_week",
+    "st09/2019/01/01/simple.copc.laz": "gps_week",
+    "st10/2020-02-16/simple1_1.las": "gps_week",
+    "st11/simple1_3.las": "gps_week_header",
+    "st12/unregistered_extra_bytes.las": "header_date",  # GPS times all zero
+    "st13/vegetation_1_3.las": "gps_week_header",
 }
 
 
