@@ -81,13 +81,13 @@ def migrate_command(source, shelf, site_file, crs, salvage, cell, no_previews, w
       scanshelf migrate /mnt/labserver/tls /scratch/shelf --workers 2 --memory-per-worker 2GiB
       scanshelf migrate s3://lab-archive/tls /scratch/shelf --scheduler tcp://10.0.0.5:8786
     """
-    from archive.migrate import migrate
+    from archive.migrate import MigrateOptions, migrate
 
     if quiet or as_json:
         silence_warnings()
-    result = migrate(source, shelf, site_file, crs, salvage=salvage, cell=cell,
-                     storage_options=params.storage_options(storage_options, source), progress=not (quiet or as_json),
-                     previews=not no_previews, workers=workers, scheduler=scheduler,
-                     memory_per_worker=memory_per_worker)
+    options = MigrateOptions(salvage=salvage, cell=cell, storage_options=params.storage_options(storage_options, source),
+                             progress=not (quiet or as_json), previews=not no_previews, workers=workers,
+                             scheduler=scheduler, memory_per_worker=memory_per_worker)
+    result = migrate(source, shelf, site_file, crs, options=options)
     click.echo(json.dumps(dataclasses.asdict(result) | {"ok": result.ok}) if as_json else result.summary())
     sys.exit(0 if result.ok else 1)

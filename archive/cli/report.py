@@ -81,6 +81,7 @@ def watch_command(source: str, shelf: str, publish_to: str | None, every: str, r
       scanshelf watch ./incoming ./shelf --publish s3://survey-data/site-a --every 1h
       scanshelf watch ./incoming ./shelf --rounds 1 --json      # one round, for cron
     """
+    from archive.migrate import MigrateOptions
     from archive.watch import parse_duration, watch
 
     try:
@@ -98,8 +99,8 @@ def watch_command(source: str, shelf: str, publish_to: str | None, every: str, r
         raise click.UsageError("-p/--publish-option is for the --publish DEST; give --publish too")
     if quiet or as_json:
         silence_warnings()
-    result = watch(source, shelf, interval, publish_to, rounds, site_file, crs, salvage=salvage,
-                   storage_options=params.storage_options(storage_options, source),
+    options = MigrateOptions(salvage=salvage, storage_options=params.storage_options(storage_options, source))
+    result = watch(source, shelf, interval, publish_to, rounds, site_file, crs, options=options,
                    publish_options=params.storage_options(publish_option, publish_to, "-p/--publish-option"),
                    report=not no_report, on_round=show)
     if result.interrupted and not as_json:
