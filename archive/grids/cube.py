@@ -75,11 +75,6 @@ VARIABLE_ATTRS = {
 }
 
 
-def _fs(url: str, storage_options: dict | None):
-    fs, path = filesystem(url, storage_options)
-    return fs, path
-
-
 def _utc(t: datetime) -> np.datetime64:
     if t.tzinfo is None:
         raise ValueError(f"scan time {t!r} must be timezone-aware (UTC)")
@@ -101,16 +96,16 @@ def coords_for(spec: GridSpec) -> dict:
     return {"x": x, "y": y, "spatial_ref": xr.Variable((), np.int64(0), spatial_ref_attrs(spec))}
 
 
+FLOAT_VARS = ("elevation", "elevation_std")
+
+
 def quantize_attrs(name: str) -> dict:
     """What a reader must know about the stored precision of a float variable."""
     if name not in FLOAT_VARS:
         return {}
-    step = 2.0 ** -math.ceil(QUANTIZE_DIGITS * math.log2(10))
+    bits = math.ceil(QUANTIZE_DIGITS * math.log2(10))  # Quantize keeps this many fraction bits
     return {"scanshelf:quantize": f"numcodecs Quantize(digits={QUANTIZE_DIGITS}): values rounded to multiples "
-                                  f"of 2^-{math.ceil(QUANTIZE_DIGITS * math.log2(10))} m; error <= {step / 2:.2e} m"}
-
-
-FLOAT_VARS = ("elevation", "elevation_std")
+                                  f"of 2^-{bits} m; error <= {2.0 ** -bits / 2:.2e} m"}
 
 
 def epoch_dataset(spec: GridSpec, time: datetime, scan_id: str, epoch: EpochGrid) -> xr.Dataset:
@@ -182,7 +177,7 @@ def map_encoding(spec: GridSpec) -> dict:
 
 def read_spec(cube_url: str, storage_options: dict | None = None) -> GridSpec | None:
     """The spec stored in an existing cube's attributes, or None when there is no cube."""
-    fs, path = _fs(cube_url, storage_options)
+    fs, path = filesystem(cube_url, storage_options)
     if not fs.exists(f"{path}/zarr.json"):
         return None
     with fs.open(f"{path}/zarr.json", "rb") as f:
@@ -200,7 +195,7 @@ def _scan_ids(cube_url: str, storage_options: dict | None) -> np.ndarray:
 
 def _mark_series_stale(cube_url: str, storage_options: dict | None) -> None:
     """Flag the series copy as out of date *before* the root changes (safe if we die between)."""
-    fs, path = _fs(cube_url, storage_options)
+    fs, path = filesystem(cube_url, storage_options)
     if fs.exists(f"{path}/{SERIES_GROUP}/zarr.json"):
         group = zarr.open_group(zarr_store(cube_url, storage_options), path=SERIES_GROUP, mode="r+",
                                 zarr_format=3, use_consolidated=False)
@@ -226,7 +221,7 @@ def write_epoch(
     step = epoch_dataset(spec, time, scan_id, epoch)
     existing = read_spec(cube_url, storage_options)
     if existing is None:
-        fs, path = _fs(cube_url, storage_options)
+        fs, path = filesystem(cube_url, storage_options)
         suffix = f".tmp-{uuid.uuid4().hex[:8]}"
         step.to_zarr(zarr_store(cube_url.rstrip("/") + suffix, storage_options), zarr_format=3,
                      consolidated=True, mode="w-", encoding=map_encoding(spec), write_empty_chunks=False)
@@ -304,7 +299,7 @@ def zarr_store(url: str, storage_options: dict | None = None):
     from fsspec.implementations.local import LocalFileSystem
     from zarr.storage import FsspecStore, LocalStore
 
-    fs, path = _fs(url, storage_options)
+    fs, path = filesystem(url, storage_options)
     if isinstance(fs, LocalFileSystem):
         return LocalStore(path)
     return FsspecStore.from_url(url, storage_options=storage_options or None)
