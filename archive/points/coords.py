@@ -72,6 +72,7 @@ class AxisEncoding:
 
     @property
     def type(self) -> pa.DataType:
+        """The column's type as readers of the file get it (in memory decimals travel as decimal64)."""
         return pa.float64() if self.kind == "float" else pa.decimal128(MAX_DIGITS, self.places)
 
     @property
@@ -101,8 +102,14 @@ class AxisEncoding:
                         "survive as a float64 coordinate"
                     )
             return pa.array(values, pa.float64())
-        units = raw.astype(np.int64) * self._step + self._shift
-        return decimal_from_units(units, self.places)
+        return decimal_from_units(self.units(raw), self.places)
+
+    def units(self, raw: np.ndarray) -> np.ndarray:
+        """LAS integers X of a decimal axis → the stored int64 counts of 10^-k."""
+        units = raw.astype(np.int64)
+        units *= self._step
+        units += self._shift
+        return units
 
     def to_las(self, values: np.ndarray) -> np.ndarray:
         """float64 coordinates of a float axis → the LAS integers they were computed from."""
@@ -143,20 +150,24 @@ class AxisEncoding:
 
 
 def decimal_from_units(units: np.ndarray, places: int) -> pa.Array:
-    """int64 count of 10^-places → decimal128(18, places) without a copy through Python."""
+    """int64 counts of 10^-places → DECIMAL(18, places) as Arrow's decimal64, sharing the buffer.
+
+    Parquet stores DECIMAL(18, k) as INT64 either way; decimal64 skips building 16-byte values
+    that the writer would narrow again. Files carry no Arrow schema, so readers get decimal128.
+    """
     units = np.ascontiguousarray(units, dtype=np.int64)
-    pairs = np.empty((units.size, 2), dtype=np.int64)
-    pairs[:, 0] = units
-    np.right_shift(units, 63, out=pairs[:, 1])  # sign extension into the high word (little-endian two's complement)
-    return pa.Array.from_buffers(pa.decimal128(MAX_DIGITS, places), units.size, [None, pa.py_buffer(pairs)])
+    return pa.Array.from_buffers(pa.decimal64(MAX_DIGITS, places), units.size, [None, pa.py_buffer(units)])
 
 
-def units_of(array: pa.Array | pa.ChunkedArray) -> np.ndarray:
-    """DECIMAL array → int64 counts of 10^-scale (the low word; values fit INT64 by construction)."""
+def units_of(array: pa.Array | pa.ChunkedArray, copy: bool = True) -> np.ndarray:
+    """DECIMAL array (decimal64 or decimal128) → int64 counts of 10^-scale (for decimal128 the low
+    word; values fit INT64 by construction). ``copy=False`` may return a view of the buffer."""
     if isinstance(array, pa.ChunkedArray):
-        parts = [units_of(c) for c in array.chunks]
+        parts = [units_of(c, copy) for c in array.chunks]
         return np.concatenate(parts) if parts else np.empty(0, np.int64)
     if array.null_count:
         raise ValueError("coordinate columns may not hold nulls")
     words = np.frombuffer(array.buffers()[1], dtype=np.int64)
-    return words[2 * array.offset : 2 * (array.offset + len(array)) : 2].copy()
+    step = array.type.bit_width // 64
+    view = words[step * array.offset : step * (array.offset + len(array)) : step]
+    return view.copy() if copy else view

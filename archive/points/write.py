@@ -2,14 +2,16 @@
 
 Encodings were chosen by measurement (benchmarks/points.py, scan-like points): x, y, z as DECIMAL
 stored as INT64 with DELTA_BINARY_PACKED and other integers likewise (in scan order neighbouring
-values differ little), floats with BYTE_STREAM_SPLIT, dictionaries only on 8-bit enum columns
-(on wide columns they cost speed), zstd level 1 (levels 2-3 saved about 1 % for a few % of speed).
+values differ little), floats with BYTE_STREAM_SPLIT, 8-bit enums and flags PLAIN (dictionaries
+on them cost 10-20 % of the write time for under 1 % of size once zstd has run; on wide columns
+they cost far more), zstd level 1 (levels 2-3 saved about 1 % for a few % of speed).
 The checksum and the statistics are computed from the bytes and values as they are written, so
 the file is never read back.
 """
 
 from __future__ import annotations
 
+import base64
 import hashlib
 import io
 import json
@@ -23,8 +25,10 @@ import pyarrow.parquet as pq
 
 from ..records import ColumnInfo
 from ..storage import filesystem
+from .coords import units_of
 from .hilbert import SiteGrid
-from .sort import COORDS, sorted_row_groups
+from .rows import COORDS, Rows
+from .sort import sorted_row_groups
 
 META_KEY = b"scanshelf"
 WRITE_BUFFER = 4 * 2**20  # bytes gathered before they are hashed and written
@@ -75,7 +79,7 @@ class Encoding:
     coordinates: str = "DELTA_BINARY_PACKED"  # x, y, z (INT64 decimals)
     floats: str = "BYTE_STREAM_SPLIT"
     integers: str | None = "DELTA_BINARY_PACKED"  # other integer columns; None = PLAIN
-    dictionary_enums: bool = True  # dictionary-encode 8-bit and boolean columns
+    dictionary_enums: bool = False  # dictionary-encode 8-bit and boolean columns
 
     def writer_options(self, schema: pa.Schema) -> dict:
         encodings: dict[str, str] = {}
@@ -84,8 +88,9 @@ class Encoding:
             t = f.type
             if f.name in COORDS and pa.types.is_decimal(t):  # float64 coordinates: as floats
                 encodings[f.name] = self.coordinates
-            elif self.dictionary_enums and (pa.types.is_boolean(t) or (pa.types.is_integer(t) and t.bit_width == 8)):
-                dictionary.append(f.name)
+            elif pa.types.is_boolean(t) or (pa.types.is_integer(t) and t.bit_width == 8):
+                if self.dictionary_enums:  # else PLAIN: zstd packs the small values as well
+                    dictionary.append(f.name)
             elif pa.types.is_floating(t) and self.floats != "PLAIN":
                 encodings[f.name] = self.floats
             elif pa.types.is_integer(t) and self.integers:
@@ -117,7 +122,7 @@ class WrittenScan:
 
 
 def write_scan(
-    chunks: Iterable[pa.Table],
+    chunks: Iterable[pa.Table] | Rows,
     dest: str,
     grid: SiteGrid,
     *,
@@ -130,13 +135,15 @@ def write_scan(
     scan_order: bool = True,
     storage_options: dict | None = None,
 ) -> WrittenScan:
-    """Sort `chunks` (pyarrow Tables with decimal x, y, z) into Hilbert row groups and write `dest`.
+    """Sort `chunks` (pyarrow Tables with decimal x, y, z, or `Rows` of records) into Hilbert row
+    groups and write `dest`.
 
     `dest` is written exactly as named (the caller picks temporary names and renames).
     `metadata` becomes the file's key-value metadata; the JSON under b"scanshelf" (str, bytes or
     dict) gains "site_grid", "row_group_size" and "row_order". `on_sorted` sees every row once,
     in file order, as it is written, so other products (grids, footprints) need no second read;
-    its tables hold whole row groups, several at a time when they are small (up to BATCH_ROWS rows).
+    its tables hold whole row groups, several at a time when they are small (up to BATCH_ROWS rows),
+    with decimal coordinates as decimal64 (readers of the file get decimal128: see `_key_values`).
     """
     groups = sorted_row_groups(
         chunks, grid, row_group_size=row_group_size, memory_budget=memory_budget,
@@ -155,7 +162,7 @@ def write_scan(
             for table in groups:
                 if writer is None:
                     schema = table.schema.with_metadata(_metadata(metadata, grid, row_group_size, scan_order))
-                    writer = pq.ParquetWriter(buffered, schema, **encoding.writer_options(schema))
+                    writer = pq.ParquetWriter(buffered, schema, store_schema=False, **encoding.writer_options(schema))
                     stats = {f.name: _Moments() for f in schema if _has_moments(f)}
                 writer.write_table(table, row_group_size=row_group_size)  # whole groups: split exactly there
                 for name, m in stats.items():
@@ -164,6 +171,8 @@ def write_scan(
                 count += -(-len(table) // row_group_size)
                 if on_sorted is not None:
                     on_sorted(table)
+            if writer is not None:
+                writer.add_key_value_metadata(_key_values(schema))
         finally:
             groups.close()  # removes spill files, also on error
             if writer is not None:
@@ -188,6 +197,17 @@ def _metadata(metadata: dict, grid: SiteGrid, row_group_size: int, scan_order: b
     )
     out[META_KEY] = json.dumps(doc).encode()
     return out
+
+
+def _key_values(schema: pa.Schema) -> dict[bytes, bytes]:
+    """The footer's key-value metadata: the schema's own, and the Arrow schema that a reader gets
+    back, with decimal64 coordinates as decimal128. The file is then byte for byte the one that
+    writing decimal128 columns gives; decimal64 only spares the writer building 16-byte values.
+    """
+    fields = [pa.field(f.name, pa.decimal128(f.type.precision, f.type.scale), f.nullable, f.metadata)
+              if pa.types.is_decimal(f.type) else f for f in schema]
+    readable = pa.schema(fields, metadata=schema.metadata)
+    return {**(schema.metadata or {}), b"ARROW:schema": base64.b64encode(readable.serialize().to_pybytes())}
 
 
 def _bytes(v: object) -> bytes:
@@ -253,12 +273,9 @@ def _has_moments(field: pa.Field) -> bool:
 
 
 def _values(column: pa.ChunkedArray) -> np.ndarray:
-    """Values for statistics without copying: decimals as a strided view of their low words."""
+    """Values for statistics without copying: decimals as (a strided view of the low words of) their units."""
     if pa.types.is_decimal(column.type):
-        parts = []
-        for a in column.chunks:
-            words = np.frombuffer(a.buffers()[1], dtype=np.int64)
-            parts.append(words[2 * a.offset : 2 * (a.offset + len(a)) : 2])
+        parts = [units_of(a, copy=False) for a in column.chunks]
         return parts[0] if len(parts) == 1 else np.concatenate(parts)
     column = column.drop_null() if column.null_count else column
     if pa.types.is_boolean(column.type):
@@ -269,12 +286,13 @@ def _values(column: pa.ChunkedArray) -> np.ndarray:
 def _column_info(field: pa.Field, m: _Moments | None) -> ColumnInfo:
     t = field.type
     size = 8 if field.name in COORDS else max(1, getattr(t, "bit_width", 8) // 8)
+    name = str(pa.decimal128(t.precision, t.scale)) if pa.types.is_decimal(t) else str(t)
     if m is None or m.n == 0:
-        return ColumnInfo(field.name, str(t), size)
+        return ColumnInfo(field.name, name, size)
     unit = 10.0 ** -t.scale if pa.types.is_decimal(t) else 1.0
     # decimals: min/max are exact decimals; scaling the integer by a power of ten rounds once
     scaled = (lambda v: v / 10.0**t.scale) if pa.types.is_decimal(t) else (lambda v: v)
     return ColumnInfo(
-        field.name, str(t), size,
+        field.name, name, size,
         minimum=scaled(m.min), maximum=scaled(m.max), mean=m.mean * unit, stddev=math.sqrt(m.m2 / m.n) * unit,
     )

@@ -134,6 +134,9 @@ class AsciiReader:
             return fh
         return _FoldedBlanks(fh)
 
+    def rows(self, chunk_size: int = 2_000_000, salvage: bool = False) -> Iterator[pa.Table]:
+        return self.chunks(chunk_size, salvage)
+
     def chunks(self, chunk_size: int = 2_000_000, salvage: bool = False) -> Iterator[pa.Table]:
         bad_rows = 0
 

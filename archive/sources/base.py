@@ -8,11 +8,16 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from datetime import date, datetime
-from typing import Iterator, Protocol
+from decimal import Decimal
+from typing import TYPE_CHECKING, Iterator, Protocol
 
 import pyarrow as pa
 
-from archive.points.coords import AxisEncoding
+from archive.points.coords import AxisEncoding, units_of
+
+
+if TYPE_CHECKING:
+    from archive.points.rows import Rows
 
 
 class SourceError(Exception):
@@ -83,6 +88,11 @@ class PointReader(Protocol):
         """
         ...
 
+    def rows(self, chunk_size: int = 2_000_000, salvage: bool = False) -> Rows | Iterator[pa.Table]:
+        """What the sort takes: the same points as ``chunks``, as records where the source has a
+        cheaper layout of its own (archive.points.rows), else the tables themselves."""
+        ...
+
 
 def scan_time_of(header: SourceHeader, tally: ReadTally) -> datetime | None:
     """Earliest point time as UTC when the file declares absolute (adjusted standard) GPS time."""
@@ -100,9 +110,14 @@ def table_bounds(table: pa.Table) -> tuple[float, ...] | None:
         return None
     lows, highs = [], []
     for axis in "xyz":
-        lo, hi = pc.min_max(table.column(axis)).values()
-        lows.append(float(lo.as_py()))
-        highs.append(float(hi.as_py()))
+        column = table.column(axis)
+        if pa.types.is_decimal(column.type):  # Arrow has no min/max kernel for decimal64
+            units = units_of(column, copy=False)
+            lo, hi = (Decimal(int(v)).scaleb(-column.type.scale) for v in (units.min(), units.max()))
+        else:
+            lo, hi = (v.as_py() for v in pc.min_max(column).values())
+        lows.append(float(lo))
+        highs.append(float(hi))
     return (*lows, *highs)
 
 

@@ -10,6 +10,7 @@ import numpy as np
 import pyarrow as pa
 
 from archive.points.coords import AxisEncoding, LossyEncoding
+from archive.points.rows import Rows, keys_of_axes, numeric_array
 from archive.sources.base import DamagedSource, ReadTally, SourceError, SourceHeader
 
 LAS_SIGNATURE = b"LASF"
@@ -66,6 +67,7 @@ class LasReader:
                     problems=problems + vlr_problems,
                     creation_date=h.creation_date if h.creation_date and h.creation_date.year >= 1980 else None,
                 )
+                self.codec = LasCodec(h.point_format, h.scales, h.offsets, header.axes, self._renames, self.relpath)
                 self._offset = int(h.offset_to_point_data)
                 self._record = int(h.point_format.size)
                 self._evlr_start = int(getattr(h, "start_of_first_evlr", 0) or 0)
@@ -98,11 +100,22 @@ class LasReader:
             header.problems.append("file declares zero points")
         return header
 
+    def rows(self, chunk_size: int = 2_000_000, salvage: bool = False) -> Rows:
+        """The points as the file's own records (see archive.points.rows), keyed and decoded by ``codec``."""
+        return Rows(self.codec, self._arrays(chunk_size, salvage))
+
     def chunks(self, chunk_size: int = 2_000_000, salvage: bool = False) -> Iterator[pa.Table]:
+        for records in self._arrays(chunk_size, salvage):
+            yield self.codec.decode(records)
+
+    def _arrays(self, chunk_size: int, salvage: bool) -> Iterator[np.ndarray]:
         for record in self._records(chunk_size, salvage):
-            table = self._to_table(record)
-            self.tally.note_times(table.column("gps_time") if "gps_time" in table.column_names else None)
-            yield table
+            records = record.array
+            if records.dtype != self.codec.dtype:
+                raise SourceError(f"{self.relpath}: points have the layout {records.dtype}, the header says {self.codec.dtype}")
+            if "gps_time" in records.dtype.names:
+                self.tally.note_times(numeric_array(records["gps_time"]))
+            yield records
 
     def measure(self, chunk_size: int = 4_000_000) -> tuple[float, ...] | None:
         """Count, bounds and time range of the readable points, straight from the raw records."""
@@ -113,7 +126,7 @@ class LasReader:
                 lows[i] = min(lows[i], int(raw[name].min()))
                 highs[i] = max(highs[i], int(raw[name].max()))
             if "gps_time" in raw.dtype.names:
-                self.tally.note_times(pa.array(raw["gps_time"]))
+                self.tally.note_times(numeric_array(raw["gps_time"]))
         if self.tally.points == 0:
             return None
         axes = [self.header.axes[a] for a in "xyz"]
@@ -151,29 +164,82 @@ class LasReader:
                 self.tally.points += len(record)
                 yield record
 
-    def _to_table(self, record) -> pa.Table:
-        names = record.point_format.dimension_names
+
+class LasCodec:
+    """LAS point records (the file's own layout, ``PointFormat.dtype()``) as rows for the sort.
+
+    Keys come straight from the integers X, Y; ``decode`` gives one column per dimension: x, y, z
+    through their ``AxisEncoding`` (plus ``<axis>_raw`` where kept), bit fields unpacked with their
+    ASPRS masks, plain fields copied, and scaled or array-valued extra bytes through laspy's own
+    record view, so every value is the one laspy reads.
+    """
+
+    def __init__(self, point_format, scales, offsets, axes: dict[str, AxisEncoding], renames, relpath: str):
+        from laspy.point.dims import get_sub_fields_dict
+
+        self.point_format = point_format
+        self.dtype = point_format.dtype()
+        self.axes = axes
+        self.relpath = relpath
+        self._scales, self._offsets = np.asarray(scales), np.asarray(offsets)
+        self._renames = renames
+        bits = get_sub_fields_dict(int(point_format.id))
+        self._plan: list[tuple[str, str, tuple]] = []  # (how, dimension, details)
+        for name in point_format.dimension_names:
+            if name in ("X", "Y", "Z"):
+                continue
+            if name in bits:
+                composed, field = bits[name]
+                self._plan.append(("bits", name, (composed, field.mask, (field.mask & -field.mask).bit_length() - 1)))
+                continue
+            dim = point_format.dimension_by_name(name)
+            plain = not dim.is_scaled and dim.num_elements == 1 and name in self.dtype.names
+            self._plan.append(("field" if plain else "laspy", name, ()))
+        self.schema = self.decode(np.zeros(0, self.dtype)).schema
+
+    def _axis_types(self) -> tuple[pa.DataType, pa.DataType]:
+        return self.axes["x"].type, self.axes["y"].type
+
+    def keys(self, records: np.ndarray, grid) -> np.ndarray:
+        values = []
+        for axis, raw in (("x", "X"), ("y", "Y")):
+            enc = self.axes[axis]
+            if enc.kind == "float":
+                values.append(records[raw].astype(np.float64) * enc.scale + enc.offset)  # ASPRS LAS 1.4
+            else:
+                values.append(enc.units(records[raw]))
+        return keys_of_axes(grid, *values, *self._axis_types())
+
+    def decode(self, records: np.ndarray) -> pa.Table:
         columns: dict[str, pa.Array] = {}
         for axis, raw in zip("xyz", ("X", "Y", "Z")):
-            enc = self.header.axes[axis]
             try:
-                columns[axis] = enc.from_las(np.asarray(record[raw]))
+                columns[axis] = self.axes[axis].from_las(records[raw])
             except LossyEncoding as exc:
                 raise SourceError(f"{self.relpath}: {axis}: {exc}; please report this file") from None
         for axis, raw in zip("xyz", ("X", "Y", "Z")):
-            if self.header.axes[axis].raw:  # integers not recoverable from float64: keep them
-                columns[f"{axis}_raw"] = pa.array(np.ascontiguousarray(record[raw], dtype=np.int32))
-        for name in names:
-            if name in ("X", "Y", "Z"):
-                continue
-            values = np.asarray(record[name])
-            if values.ndim > 1:  # array-valued extra bytes: one column per element
-                for i in range(values.shape[1]):
-                    columns[f"{self._renames(name)}_{i}"] = pa.array(np.ascontiguousarray(values[:, i]))
-                continue
+            if self.axes[axis].raw:  # integers not recoverable from float64: keep them
+                columns[f"{axis}_raw"] = numeric_array(records[raw].astype(np.int32))
+        view = None
+        for how, name, details in self._plan:
+            if how == "bits":
+                composed, mask, shift = details
+                values = (records[composed] & mask) >> shift
+            elif how == "field":
+                values = np.ascontiguousarray(records[name])
+            else:
+                if view is None:
+                    import laspy
+
+                    view = laspy.ScaleAwarePointRecord(records, self.point_format, self._scales, self._offsets)
+                values = np.asarray(view[name])
+                if values.ndim > 1:  # array-valued extra bytes: one column per element
+                    for i in range(values.shape[1]):
+                        columns[f"{self._renames(name)}_{i}"] = numeric_array(values[:, i])
+                    continue
             if values.dtype == np.bool_:
                 values = values.astype(np.uint8)
-            columns[self._renames(name)] = pa.array(np.ascontiguousarray(values))
+            columns[self._renames(name)] = numeric_array(values)
         return pa.table(columns)
 
 
@@ -189,10 +255,10 @@ def _check_raw_header(fh, relpath: str, size: int) -> list[str]:
     header_size, offset, n_vlr = struct.unpack_from("<HII", raw, 94)
     if offset < header_size:
         raise SourceError(f"{relpath}: the point data offset ({offset}) lies inside the {header_size}-byte header; the header is damaged")
-    if n_vlr * VLR_HEADER > offset - header_size:
+    if n_vlr * VLR_HEADER > min(offset, size) - header_size:  # a huge count sends laspy into a long loop
         raise SourceError(
-            f"{relpath}: the header declares {n_vlr} VLRs, but only {offset - header_size} bytes lie between "
-            "the header and the point data; the header is damaged"
+            f"{relpath}: the header declares {n_vlr} VLRs, but only {min(offset, size) - header_size} bytes follow "
+            "the header before the point data (or the end of the file); the header is damaged"
         )
     for i, axis in enumerate("xyz"):
         scale, shift = struct.unpack_from("<d", raw, 131 + 8 * i)[0], struct.unpack_from("<d", raw, 155 + 8 * i)[0]
