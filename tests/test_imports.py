@@ -55,7 +55,7 @@ import archive.migrate, archive.publish  # the submodules share their names with
 from archive import migrate, publish
 assert callable(migrate) and migrate.__module__ == "archive.migrate", migrate
 assert callable(publish) and publish.__module__ == "archive.publish", publish
-for package in ("archive", "archive.grids", "archive.catalog"):
+for package in ("archive", "archive.grids", "archive.catalog", "archive.report"):
     mod = importlib.import_module(package)
     for name in mod.__all__:
         value = getattr(mod, name)
