@@ -38,7 +38,7 @@ __getattr__, __dir__ = exports(__name__, _HOMES)
 
 
 class _Api(types.ModuleType):
-    """``archive.migrate`` and ``archive.publish`` name both a submodule and a public function.
+    """``archive.migrate``, ``archive.publish`` and ``archive.survey`` name both a submodule and a function.
 
     Importing a submodule binds it as an attribute of its package. The function has always won
     that clash (``from archive import migrate`` is the function, as it was with eager imports),

@@ -51,10 +51,10 @@ def test_the_probe_sees_a_heavy_import():
 def test_public_names_resolve_to_their_definitions():
     code = """
 import importlib
-import archive.migrate, archive.publish  # the submodules share their names with two functions
-from archive import migrate, publish
-assert callable(migrate) and migrate.__module__ == "archive.migrate", migrate
-assert callable(publish) and publish.__module__ == "archive.publish", publish
+import archive.migrate, archive.publish, archive.survey  # submodules that share their names with functions
+from archive import migrate, publish, survey
+for function in (migrate, publish, survey, archive.migrate, archive.publish, archive.survey):
+    assert callable(function) and function.__module__ == "archive." + function.__name__, function
 for package in ("archive", "archive.grids", "archive.catalog", "archive.report"):
     mod = importlib.import_module(package)
     for name in mod.__all__:
@@ -69,3 +69,5 @@ else:
     raise AssertionError("archive.no_such_name resolved")
 """
     _loaded_after("import archive\n" + code)
+    # the other order: the function first, then the submodule import must not replace it
+    _loaded_after("from archive import survey\nimport archive.survey\nassert archive.survey is survey, archive.survey")
