@@ -25,7 +25,7 @@ from archive import layout
 from archive.cluster import DEFAULT_MEMORY_PER_WORKER, DaskExecutor, SerialExecutor
 from archive.crashpoints import crash_point
 from archive.frames import is_local
-from archive.grids import GridAccumulator, GridSpec, EpochGrid, write_epoch
+from archive.grids import GridAccumulator, GridSpec, EpochGrid
 from archive.grids.spec import MAX_CELLS, overlapping_groups
 from archive.layout import ScanId
 from archive.ledger import Ledger
@@ -565,6 +565,8 @@ def _record_outcome(outcome: ScanOutcome, task: ScanTask, ledger: Ledger, result
         _retire_scan(Path(task.shelf), ledger, previous.scan_id)
         result.retired.append(previous.scan_id)
     if outcome.epoch is not None:
+        from archive.grids.cube import write_epoch  # zarr, xarray, pandas: only once a scan is gridded
+
         cube = Path(task.shelf) / layout.grid_path(record.station)
         _repair_cube(cube)
         write_epoch(str(cube), GridSpec.from_dict(task.grid_spec), record.start, record.scan_id, outcome.epoch)

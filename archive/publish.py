@@ -25,11 +25,9 @@ import time
 from collections.abc import Callable, Iterable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import fsspec
-import pyarrow as pa
-import pyarrow.parquet as pq
 from fsspec.implementations.local import LocalFileSystem
 
 from archive import layout
@@ -38,6 +36,9 @@ from archive.catalog.store import ShelfFiles, multihash_sha256, resolve_href
 from archive.crashpoints import crash_point
 from archive.hrefs import redact
 from archive.storage import filesystem
+
+if TYPE_CHECKING:
+    import pyarrow as pa
 
 log = logging.getLogger(__name__)
 
@@ -188,6 +189,8 @@ def _strings(obj: Any) -> Iterable[str]:
 
 
 def _remote_manifest(fs, root: str) -> dict[str, tuple[int, str]]:
+    import pyarrow.parquet as pq  # the manifest only; `scanshelf --help` imports this module
+
     try:
         table = pq.read_table(io.BytesIO(fs.cat_file(f"{root}/{layout.MANIFEST}")))
     except Exception:  # noqa: BLE001 (absent or unreadable: hash the remote copies instead)
@@ -211,6 +214,8 @@ def _remote_sizes(fs, root: str) -> dict[str, int]:
 
 def manifest_table(entries: list[ManifestEntry]) -> pa.Table:
     """Every published file: path, size in bytes, SHA-256 hex digest."""
+    import pyarrow as pa
+
     return pa.table(
         {
             "path": pa.array([e.path for e in entries], pa.string()),
@@ -438,6 +443,8 @@ def _damaged(shelf: ShelfFiles, local: dict[str, int], digests: dict[str, str], 
 
 
 def _manifest_bytes(entries: list[ManifestEntry]) -> bytes:
+    import pyarrow.parquet as pq
+
     buf = io.BytesIO()
     pq.write_table(manifest_table(entries), buf, compression="zstd", write_page_checksum=True, store_schema=False)
     return buf.getvalue()

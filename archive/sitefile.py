@@ -13,13 +13,14 @@ import re
 import tomllib
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
-
-import jsonschema
 
 from archive.catalog.extensions import SCHEMA_DIR
 from archive.frames import declares_no_crs
+
+if TYPE_CHECKING:
+    import jsonschema
 
 DEFAULT_STATION = r"^(?P<station>[^/]+)/"
 DEFAULT_TIME = r"(?P<time>\d{8}[_T]\d{6})"
@@ -209,6 +210,8 @@ _TYPES = {"array": "a list [...]", "object": "a table", "string": "a string in q
 
 @functools.cache
 def _validator() -> jsonschema.Draft202012Validator:
+    import jsonschema  # only when a site file is read; zero-config runs never load it
+
     return jsonschema.Draft202012Validator(json.loads(SCHEMA_PATH.read_text(encoding="utf-8")))
 
 

@@ -99,7 +99,7 @@ for stage, module, name in [
     ("ledger", "archive.ledger", "Ledger.record_file"),
     ("ledger", "archive.ledger", "Ledger.save_inspection"),
     ("catalog", "archive.migrate", "_write_catalog"),
-    ("cube step", "archive.migrate", "write_epoch"),
+    ("cube step", "archive.grids.cube", "write_epoch"),
     ("cube step", "archive.migrate", "_repair_cube"),
     ("points (sort+write)", "archive.migrate", "write_scan"),
     ("scan total", "archive.migrate", "convert_scan"),

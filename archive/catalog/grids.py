@@ -8,13 +8,15 @@ from __future__ import annotations
 
 import hashlib
 from datetime import datetime, timezone
-from typing import Protocol
+from typing import TYPE_CHECKING, Protocol
 
-import numpy as np
-
-from archive.catalog.collections import GridInfo
 from archive.catalog.store import ShelfFiles, multihash_sha256
 from archive.storage import find_files
+
+if TYPE_CHECKING:
+    import numpy as np
+
+    from archive.catalog.collections import GridInfo
 
 
 class HashMemo(Protocol):
@@ -74,6 +76,8 @@ def discover_grids(shelf: ShelfFiles) -> list[GridInfo]:
 
 def _describe(ds, rel: str, station: str, product: str) -> GridInfo:
     from pyproj import CRS
+
+    from archive.catalog.collections import GridInfo  # pystac, pyproj: publish needs only store_fingerprint
 
     crs_wkt = None
     for name in ("spatial_ref", "crs"):

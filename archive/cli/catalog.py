@@ -6,7 +6,6 @@ import sys
 
 import click
 
-from archive.catalog import rebuild_catalog, verify_shelf
 from archive.cli import params
 from archive.cli.common import site_option, storage_option
 from archive.sitefile import load_site_file
@@ -28,6 +27,8 @@ def catalog_command(shelf: str, site_file: str | None) -> None:
       scanshelf catalog ./site-shelf --site site.toml
       scanshelf verify ./site-shelf
     """
+    from archive.catalog import rebuild_catalog  # pystac, pyproj, rasterio: only for this command
+
     settings = load_site_file(site_file).catalog if site_file else None
     result = rebuild_catalog(shelf, settings=settings)
     for warning in result.warnings:
@@ -54,6 +55,8 @@ def verify_command(shelf: str, online: bool, quick: bool, storage_options: tuple
       scanshelf verify ./site-shelf --quick
       scanshelf verify s3://bucket/site-shelf -s endpoint_url=http://127.0.0.1:9000
     """
+    from archive.catalog import verify_shelf  # pystac, jsonschema, stac-pydantic: only for this command
+
     report = verify_shelf(shelf, online=online, quick=quick, storage_options=params.storage_options(storage_options, shelf))
     click.echo(report.summary())
     sys.exit(0 if report.ok else 1)

@@ -6,8 +6,6 @@ import time
 
 import click
 
-from archive.demo import make_demo
-
 
 @click.command("demo")
 @click.argument("dest", default="scanshelf-demo", type=click.Path(file_okay=False))
@@ -34,6 +32,8 @@ def demo(dest, seed, points, total_points, weeks, stations, no_faults, workers, 
         scanshelf demo ./scanshelf-demo --points 20000 --weeks 4
         scanshelf demo /data/big-demo --total-points 2000000000 --no-faults --workers 8
     """
+    from archive.demo import make_demo  # xarray, rioxarray, dask: only for this command
+
     began = time.perf_counter()
     truth = make_demo(dest, seed=seed, points_per_scan=points, total_points=total_points, weeks=weeks,
                       stations=stations, faults=not no_faults, workers=workers, overwrite=overwrite)

@@ -164,10 +164,10 @@ class BytesType(click.ParamType):
     name = "SIZE"
 
     def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None) -> int:
-        from dask.utils import parse_bytes
-
         if isinstance(value, int):
             return value
+        from dask.utils import parse_bytes  # dask only for a size the user typed
+
         try:
             size = parse_bytes(str(value))
         except (ValueError, TypeError):

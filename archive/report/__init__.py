@@ -1,10 +1,25 @@
-"""Human-facing outputs: preview pictures of grids and change maps."""
+"""Human-facing outputs: preview pictures of grids and change maps, and the health report.
 
-from archive.report.previews import render_change, render_preview
+The names are imported on first use (archive/lazy.py): a worker rendering one scan's preview
+needs archive.report.previews, not the report page behind it (zarr, pystac, the charts).
+"""
 
-__all__ = ["render_change", "render_preview"]
+from __future__ import annotations
 
-# the health report (archive.report.html); appended, the lines above are the previews' exports
-from archive.report.html import ReportResult, build_report, write_index_html  # noqa: E402
+from typing import TYPE_CHECKING
 
-__all__ += ["ReportResult", "build_report", "write_index_html"]
+from archive.lazy import exports
+
+if TYPE_CHECKING:
+    from archive.report.html import ReportResult, build_report, write_index_html
+    from archive.report.previews import render_change, render_preview
+
+_HOMES = {
+    "render_change": "archive.report.previews", "render_preview": "archive.report.previews",
+    "ReportResult": "archive.report.html", "build_report": "archive.report.html",
+    "write_index_html": "archive.report.html",
+}
+
+__all__ = ["render_change", "render_preview", "ReportResult", "build_report", "write_index_html"]
+
+__getattr__, __dir__ = exports(__name__, _HOMES)

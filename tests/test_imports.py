@@ -1,0 +1,73 @@
+"""What a `scanshelf` run and a dask worker load before doing any work.
+
+Every ``scanshelf`` command and every dask worker imports ``archive.cli`` or ``archive.migrate``;
+xarray, dask, zarr, pandas, matplotlib and rasterio must wait until a function needs them
+(archive/lazy.py and function-level imports). Each check runs in a fresh interpreter and reads
+``sys.modules`` there (reference: the Python import system), so an eager import anywhere on
+the path fails it by name.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+HEAVY = ("xarray", "dask", "zarr", "matplotlib", "pandas", "rasterio")
+
+
+def _loaded_after(code: str) -> set[str]:
+    """Top-level package names in ``sys.modules`` after running ``code`` in a new interpreter."""
+    probe = code + "\nimport json, sys\nprint(json.dumps(sorted({m.partition('.')[0] for m in sys.modules})))"
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")]))}
+    run = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, env=env, cwd=ROOT, check=False)
+    assert run.returncode == 0, run.stderr
+    return set(json.loads(run.stdout.splitlines()[-1]))
+
+
+@pytest.mark.parametrize("module", ["archive.migrate", "archive.cli", "archive"])
+def test_startup_does_not_load_the_heavy_libraries(module):
+    loaded = _loaded_after(f"import {module}")
+    assert "archive" in loaded  # the probe did import the package
+    assert sorted(loaded & set(HEAVY)) == []
+
+
+def test_zero_config_site_file_does_not_load_jsonschema():
+    loaded = _loaded_after("from archive.sitefile import load_site_file\nload_site_file(None)")
+    assert "jsonschema" not in loaded
+
+
+def test_the_probe_sees_a_heavy_import():
+    """The check above can fail: asking for ``elevation_change`` does pull in xarray."""
+    loaded = _loaded_after("from archive import elevation_change")
+    assert {"xarray", "pandas"} <= loaded
+
+
+def test_public_names_resolve_to_their_definitions():
+    code = """
+import importlib
+import archive.migrate, archive.publish, archive.survey  # submodules that share their names with functions
+from archive import migrate, publish, survey
+for function in (migrate, publish, survey, archive.migrate, archive.publish, archive.survey):
+    assert callable(function) and function.__module__ == "archive." + function.__name__, function
+for package in ("archive", "archive.grids", "archive.catalog", "archive.report"):
+    mod = importlib.import_module(package)
+    for name in mod.__all__:
+        value = getattr(mod, name)
+        assert getattr(value, "__name__", name) == name, (package, name, value)
+        assert name in dir(mod), (package, name)
+try:
+    archive.no_such_name
+except AttributeError as exc:
+    assert "no_such_name" in str(exc)
+else:
+    raise AssertionError("archive.no_such_name resolved")
+"""
+    _loaded_after("import archive\n" + code)
+    # the other order: the function first, then the submodule import must not replace it
+    _loaded_after("from archive import survey\nimport archive.survey\nassert archive.survey is survey, archive.survey")
