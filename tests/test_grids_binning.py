@@ -108,3 +108,14 @@ def test_chunks_of_compact_blocks_with_outside_points_equal_scipy():
     np.testing.assert_allclose(got.elevation, north_up["mean"], rtol=0, atol=1e-4)
     np.testing.assert_allclose(got.elevation_std, north_up["std"], rtol=1e-4, atol=1e-6)
     assert got.outside == n - int(inside.sum()) and got.inside == int(inside.sum())
+
+
+def test_finish_ends_the_accumulator():
+    spec = GridSpec(station="north", crs_wkt=CRS, x0=0.0, y0=0.0, cell=1.0, nx=2, ny=2)
+    acc = GridAccumulator(spec)
+    acc.add(np.array([0.5]), np.array([0.5]), np.array([3.0]))
+    assert acc.finish().point_count.sum() == 1
+    with pytest.raises(RuntimeError, match="called already"):
+        acc.finish()
+    with pytest.raises(RuntimeError, match="new accumulator"):
+        acc.add(np.array([0.5]), np.array([0.5]), np.array([3.0]))

@@ -57,6 +57,8 @@ class GridAccumulator:
         are summed in the same order as a whole-grid ``np.bincount``, so the result is the same
         to the bit.
         """
+        if self._count is None:
+            raise RuntimeError("GridAccumulator.add() after finish(): start a new accumulator")
         s = self.spec
         fx = np.subtract(x, s.x0)
         fx /= s.cell
@@ -93,21 +95,32 @@ class GridAccumulator:
         self._sumsq[r0:r1, c0:c1] += np.bincount(idx, weights=d, minlength=cells).reshape(block)
 
     def finish(self) -> EpochGrid:
-        s = self.spec
-        n = self._count
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean = self._sum / n
-            var = np.maximum(self._sumsq / n - mean * mean, 0.0)
+        """The epoch grids. The running sums turn into them in place: a grid-sized temporary is a
+        fresh allocation, and first-touch page faults of fresh memory cost as much as the
+        arithmetic. So this ends the accumulator; ``add`` or ``finish`` after it raise."""
+        if self._count is None:
+            raise RuntimeError("GridAccumulator.finish() was called already")
+        n, mean, var = self._count, self._sum, self._sumsq
+        self._count = self._sum = self._sumsq = None  # type: ignore[assignment]
+        if n.size and n.max() > np.iinfo(np.uint32).max:
+            raise OverflowError("more than 4e9 points in one cell: use a larger cell size")
+        count = n.astype(np.uint32)
         empty = n == 0
+        with np.errstate(invalid="ignore", divide="ignore"):
+            np.divide(mean, n, out=mean)  # mean of z - ref
+            np.divide(var, n, out=var)  # mean of (z - ref)²
+            square = n.view(np.float64)  # the counts' memory, no longer needed, holds mean²
+            np.multiply(mean, mean, out=square)
+            var -= square
+            np.maximum(var, 0.0, out=var)
         mean[empty] = np.nan
         var[empty] = np.nan
-        if np.any(n > np.iinfo(np.uint32).max):
-            raise OverflowError("more than 4e9 points in one cell: use a larger cell size")
-        ref = self._ref if self._ref is not None else 0.0
+        mean += self._ref if self._ref is not None else 0.0
+        np.sqrt(var, out=var)
         return EpochGrid(
-            elevation=(mean + ref).astype(np.float32),
-            elevation_std=np.sqrt(var).astype(np.float32),
-            point_count=n.astype(np.uint32),
+            elevation=mean.astype(np.float32),
+            elevation_std=var.astype(np.float32),
+            point_count=count,
             outside=self.outside,
         )
 
