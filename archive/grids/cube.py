@@ -6,7 +6,7 @@ Two layouts live in one store, because no single chunking serves both common rea
   map rounded up to whole inner chunks of ``(1, 256, 256)``, split only when a shard would hold
   more than 16 MB of raw values (so an object is at most ~16 MB on the wire, and a map is one
   or a few objects). Reading one epoch's map is one object and almost exactly its own bytes;
-  appending an epoch only *adds* objects (xarray's ``append_dim``), so earlier epochs' chunks
+  appending an epoch only *adds* objects (the arrays along time grow by one), so earlier epochs' chunks
   are never rewritten. Inner chunks with no data are not stored (``write_empty_chunks=False``).
 * the ``series`` group ("series layout") is a derived copy built by
   :func:`archive.grids.series.write_series` after a batch of appends: shards of all epochs over
