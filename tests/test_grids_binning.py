@@ -75,3 +75,47 @@ def test_std_is_stable_for_large_elevations():
     got = bin_points(spec, rng.uniform(0, 10, z.size), rng.uniform(0, 10, z.size), z)
     # reference: numpy.std (two-pass, ddof=0) on the same values
     assert got.elevation_std[0, 0] == pytest.approx(np.std(z), rel=1e-4)
+
+
+def test_chunks_of_compact_blocks_with_outside_points_equal_scipy():
+    # migrate feeds row groups in Hilbert order: each chunk covers a small block of the grid,
+    # except sparse ones; some chunks hold points outside the grid or on its far edges
+    rng = np.random.default_rng(11)
+    spec = GridSpec(station="north", crs_wkt=CRS, x0=1000.0, y0=5000.0, cell=0.5, nx=37, ny=23)
+    n = 50_000
+    x = rng.uniform(spec.x0 - 2.0, spec.x1 + 2.0, n)
+    y = rng.uniform(spec.y0 - 2.0, spec.y1 + 2.0, n)
+    x[:40] = spec.x1  # half-open: the east and north edges are outside
+    y[40:80] = spec.y1
+    z = 812.5 + 0.02 * (x - spec.x0) + rng.normal(0, 0.2, n)
+    order = np.lexsort(((x // 4.0), (y // 3.0)))  # compact blocks of 8 × 6 cells, block rows in turn
+    x, y, z = x[order], y[order], z[order]
+    acc = GridAccumulator(spec)
+    bounds = [0, 3, 900, 901, 5_000, 20_000, 20_000, 33_333, n]
+    for a, b in zip(bounds, bounds[1:]):
+        acc.add(x[a:b], y[a:b], z[a:b])
+    got = acc.finish()
+    edges = (np.linspace(spec.x0, spec.x1, spec.nx + 1), np.linspace(spec.y0, spec.y1, spec.ny + 1))
+    # scipy closes the last bin; the grid's cells are all half-open: its edge points are outside
+    inside = (x < spec.x1) & (y < spec.y1)
+    # reference: scipy.stats.binned_statistic_2d (statistic[ix, iy], y ascending; std is ddof=0;
+    # points beyond the edges are not binned)
+    ref = {s: binned_statistic_2d(x[inside], y[inside], z[inside], statistic=s, bins=edges).statistic
+           for s in ("mean", "std", "count")}
+    north_up = {k: v.T[::-1] for k, v in ref.items()}
+    inside &= (x >= spec.x0) & (y >= spec.y0)
+    np.testing.assert_array_equal(got.point_count, north_up["count"].astype(np.uint32))
+    np.testing.assert_allclose(got.elevation, north_up["mean"], rtol=0, atol=1e-4)
+    np.testing.assert_allclose(got.elevation_std, north_up["std"], rtol=1e-4, atol=1e-6)
+    assert got.outside == n - int(inside.sum()) and got.inside == int(inside.sum())
+
+
+def test_finish_ends_the_accumulator():
+    spec = GridSpec(station="north", crs_wkt=CRS, x0=0.0, y0=0.0, cell=1.0, nx=2, ny=2)
+    acc = GridAccumulator(spec)
+    acc.add(np.array([0.5]), np.array([0.5]), np.array([3.0]))
+    assert acc.finish().point_count.sum() == 1
+    with pytest.raises(RuntimeError, match="called already"):
+        acc.finish()
+    with pytest.raises(RuntimeError, match="new accumulator"):
+        acc.add(np.array([0.5]), np.array([0.5]), np.array([3.0]))

@@ -194,3 +194,35 @@ def test_empty_chunks_are_not_stored(tmp_path):
     assert series == {f"series/elevation/c/0/{r}/{c}" for r in rows for c in cols}  # only shards with data
     ds = xr.open_zarr(url, group="series", zarr_format=3, consolidated=True)
     assert np.isnan(ds["elevation"][:, 300, 300].values).all() and int(ds["point_count"][:, 300, 300].sum()) == 0
+
+
+def test_appended_steps_read_back_with_plain_xarray_and_consolidated_json(cube):
+    url, spec = cube
+    late = epoch(spec, 102.0, 2)
+    late.outside = 17
+    write_epoch(url, spec, T0 + timedelta(days=2, microseconds=600_000), sid(2), late)
+    # reference: xarray.open_zarr decodes the CF time from the stored integers and its units
+    ds = xr.open_zarr(url, zarr_format=3, consolidated=True)
+    assert [str(t) for t in ds["time"].values] == [f"2026-03-0{d}T06:00:00.000000000" for d in (1, 2, 3)]
+    assert list(ds["scan_id"].values) == [sid(0), sid(1), sid(2)]
+    assert ds["points_outside"].values.tolist() == [0, 0, 17] and ds["points_outside"].dtype == np.uint64
+    np.testing.assert_array_equal(ds["elevation"][2].values, quantized(late.elevation))
+    np.testing.assert_array_equal(ds["point_count"][2].values, late.point_count)
+    # reference: the consolidated copy in the root's Zarr v3 JSON, read without zarr-python
+    meta = json.loads(Path(url, "zarr.json").read_text())["consolidated_metadata"]["metadata"]
+    assert {name: meta[name]["shape"][0] for name in ("elevation", "time", "scan_id", "points_outside")} == {
+        "elevation": 3, "time": 3, "scan_id": 3, "points_outside": 3}
+
+
+def test_a_blanked_slot_takes_the_new_scans_time_and_values(cube):
+    url, spec = cube
+    group = zarr.open_group(url, mode="r+")
+    group["scan_id"][0] = ""  # a retired scan's slot (migrate blanks it this way)
+    new = epoch(spec, 130.0, 8)
+    assert write_epoch(url, spec, T0 + timedelta(days=40), sid(40), new) == 0
+    # reference: xarray.open_zarr, no scanshelf code
+    ds = xr.open_zarr(url, zarr_format=3, consolidated=True)
+    assert ds.sizes["time"] == 2
+    assert list(ds["scan_id"].values) == [sid(40), sid(1)]
+    assert str(ds["time"].values[0]) == "2026-04-10T06:00:00.000000000"
+    np.testing.assert_array_equal(ds["elevation"][0].values, quantized(new.elevation))

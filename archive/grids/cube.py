@@ -6,7 +6,7 @@ Two layouts live in one store, because no single chunking serves both common rea
   map rounded up to whole inner chunks of ``(1, 256, 256)``, split only when a shard would hold
   more than 16 MB of raw values (so an object is at most ~16 MB on the wire, and a map is one
   or a few objects). Reading one epoch's map is one object and almost exactly its own bytes;
-  appending an epoch only *adds* objects (xarray's ``append_dim``), so earlier epochs' chunks
+  appending an epoch only *adds* objects (the arrays along time grow by one), so earlier epochs' chunks
   are never rewritten. Inner chunks with no data are not stored (``write_empty_chunks=False``).
 * the ``series`` group ("series layout") is a derived copy built by
   :func:`archive.grids.series.write_series` after a batch of appends: shards of all epochs over
@@ -33,7 +33,6 @@ import warnings
 from datetime import datetime, timezone
 
 import numpy as np
-import pandas as pd
 import xarray as xr
 import zarr
 from pyproj import CRS
@@ -53,6 +52,7 @@ QUANTIZE_DIGITS = 3  # decimal places of a metre kept in elevation and elevation
 SERIES_OBJECTS = 1536  # series-layout shards per station cube at most (3 variables) ...
 SERIES_OBJECTS_PER_EPOCH = 8  # ... plus this many per epoch: long records afford smaller shard indexes
 TIME_CHUNK = 4096  # 1-D time/scan_id coordinates: one small object, rewritten on append
+TIME_UNITS = "seconds since 1970-01-01"  # time is stored as int64 whole seconds in these units
 CUBE_VARS = ("elevation", "elevation_std", "point_count")
 
 warnings.filterwarnings("ignore", message="Consolidated metadata is currently not part", category=UserWarning)
@@ -169,7 +169,7 @@ def map_encoding(spec: GridSpec) -> dict:
     for v in FLOAT_VARS:
         enc[v]["filters"] = [Quantize(digits=QUANTIZE_DIGITS, dtype="<f4")]
     enc["point_count"]["fill_value"] = 0
-    enc["time"] = {"chunks": (TIME_CHUNK,), "units": "seconds since 1970-01-01", "calendar": "proleptic_gregorian", "dtype": "int64"}
+    enc["time"] = {"chunks": (TIME_CHUNK,), "units": TIME_UNITS, "calendar": "proleptic_gregorian", "dtype": "int64"}
     enc["scan_id"] = {"chunks": (TIME_CHUNK,)}
     enc["points_outside"] = {"chunks": (TIME_CHUNK,)}
     return enc
@@ -186,11 +186,6 @@ def read_spec(cube_url: str, storage_options: dict | None = None) -> GridSpec | 
     if d is None:
         raise ValueError(f"{cube_url} is a Zarr store but not a scanshelf elevation cube (no {SPEC_ATTR!r} attribute)")
     return GridSpec.from_dict(d)
-
-
-def _scan_ids(cube_url: str, storage_options: dict | None) -> np.ndarray:
-    ds = xr.open_zarr(zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True, chunks=None)
-    return np.asarray(ds["scan_id"].values, dtype=object)  # chunks=None: numpy, no dask graph for one small array
 
 
 def _mark_series_stale(cube_url: str, storage_options: dict | None) -> None:
@@ -213,14 +208,15 @@ def write_epoch(
 ) -> int:
     """Add (or replace) one scan's time step; returns its storage index along time.
 
-    The first call creates the cube under a temporary name and renames it into place. Later
-    calls append, writing only the new epoch's shards plus the small time/scan_id coordinates;
-    a scan id already present (or a slot left empty by an interrupted append) is overwritten in
-    place.
+    The first call creates the cube (through xarray, which writes the CF metadata) under a
+    temporary name and renames it into place. Later calls write through zarr only, without
+    building a dataset: each array along time grows by one and gets the step's values, so only
+    the new epoch's shards and the small time/scan_id/points_outside objects are written. A scan
+    id already present (or a slot left empty by an interrupted append) is overwritten in place.
     """
-    step = epoch_dataset(spec, time, scan_id, epoch)
     existing = read_spec(cube_url, storage_options)
     if existing is None:
+        step = epoch_dataset(spec, time, scan_id, epoch)
         fs, path = filesystem(cube_url, storage_options)
         suffix = f".tmp-{uuid.uuid4().hex[:8]}"
         step.to_zarr(zarr_store(cube_url.rstrip("/") + suffix, storage_options), zarr_format=3,
@@ -232,21 +228,51 @@ def write_epoch(
             f"{cube_url} was built on a different grid ({existing}); re-grid the station with "
             f"`scanshelf grid SHELF --station {spec.station}` or reuse the stored spec (read_spec)"
         )
+    values = _step_values(spec, time, scan_id, epoch)
     _mark_series_stale(cube_url, storage_options)
-    ids = _scan_ids(cube_url, storage_options)
+    store = zarr_store(cube_url, storage_options)
+    root = zarr.open_group(store, mode="r+", zarr_format=3, use_consolidated=False)
+    arrays = {name: root[name].with_config({"write_empty_chunks": False}) for name in values}
+    if arrays["time"].attrs.get("units") != TIME_UNITS:
+        raise ValueError(f"{cube_url}: time is not stored in {TIME_UNITS!r}; rebuild the cube with `scanshelf grid`")
+    ids = arrays["scan_id"][:]
     slot = np.flatnonzero(ids == scan_id)
     if slot.size == 0:
-        slot = np.flatnonzero((ids == "") | pd.isna(ids))  # left by an interrupted append
+        slot = np.flatnonzero(ids == "")  # left by an interrupted append, or a retired scan's
     if slot.size:
         i = int(slot[0])
-        step.drop_vars(["x", "y", "spatial_ref"]).to_zarr(
-            zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True,
-            region={"time": slice(i, i + 1)}, write_empty_chunks=False,
-        )
+        for name, a in arrays.items():
+            a[i : i + 1] = values[name]
         return i
-    step.to_zarr(zarr_store(cube_url, storage_options), zarr_format=3, consolidated=True, append_dim="time",
-                 write_empty_chunks=False)
-    return int(ids.size)
+    # the root's metadata loses its consolidated copy first and gets it back last: an append cut
+    # short shows, and migrate's _repair_cube cuts the arrays back to the shortest. scan_id goes
+    # last, so a step with its id is complete
+    root.update_attributes({})
+    i = int(ids.size)
+    for name, a in arrays.items():
+        a.resize((i + 1, *a.shape[1:]))
+        a[i : i + 1] = values[name]
+    zarr.consolidate_metadata(store)
+    return i
+
+
+def _step_values(spec: GridSpec, time: datetime, scan_id: str, epoch: EpochGrid) -> dict[str, np.ndarray]:
+    """One time step of every array along time, as stored (see epoch_dataset and map_encoding);
+    scan_id last."""
+    shape = (spec.ny, spec.nx)
+    for name in CUBE_VARS:
+        if getattr(epoch, name).shape != shape:
+            raise ValueError(f"{name} of scan {scan_id} is {getattr(epoch, name).shape}, the grid of "
+                             f"{spec.station} is {shape}: bin it on the cube's spec (read_spec)")
+    seconds = _utc(time).astype("datetime64[s]").astype(np.int64)  # whole seconds, as epoch_dataset
+    return {
+        "elevation": epoch.elevation.astype(np.float32, copy=False)[np.newaxis],
+        "elevation_std": epoch.elevation_std.astype(np.float32, copy=False)[np.newaxis],
+        "point_count": epoch.point_count.astype(np.uint32, copy=False)[np.newaxis],
+        "time": np.array([seconds], np.int64),
+        "points_outside": np.array([epoch.outside], np.uint64),
+        "scan_id": np.array([scan_id], dtype=object),
+    }
 
 
 def open_cube(

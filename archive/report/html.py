@@ -223,8 +223,12 @@ def _draw_maps_now(cube_url: str, storage_options: dict | None, st: StationHealt
         return '<p class="quiet">The elevation cube holds no epochs yet.</p>'
     times = cube["time"].values
     ids = [str(v) for v in cube["scan_id"].values]
+    # the epochs the maps and changes use (first, last but one, last), each read and decoded once:
+    # the latest is in three pictures
+    used = sorted({0, len(times) - 2, len(times) - 1} - {-1})
+    maps = cube[["elevation"]].isel(time=used).load()
     latest = cube.isel(time=-1)
-    elevation = latest["elevation"].load()
+    elevation = maps["elevation"].isel(time=-1)
     window = _data_window(elevation)  # every map of the station shows this extent: one scale bar
     figures = [
         _figure(charts.elevation_map(elevation.isel(window), f"elevation, {ids[-1]}"),
@@ -241,7 +245,7 @@ def _draw_maps_now(cube_url: str, storage_options: dict | None, st: StationHealt
         pairs.append(("whole record", 0, -1))
     for label, i, j in pairs:
         try:
-            change = epoch_change(cube, _utc(times[i]), _utc(times[j]), spec.crs_wkt)
+            change = epoch_change(maps, _utc(times[i]), _utc(times[j]), spec.crs_wkt)
         except (OSError, ValueError) as exc:
             notes.append(f"station {st.station}: change over the {label} not drawn: {exc}")
             continue

@@ -1,0 +1,102 @@
+"""Per-scan grid costs of a migration: binning a scan's batches, and appending its cube step.
+
+    python benchmarks/grid_steps.py [--points 1500000] [--nx 2523] [--ny 1468] [--scans 5] [--rounds 3]
+
+Prints CPU milliseconds (time.process_time: this process and its threads, so zarr's codec
+threads count; the lowest of --rounds rounds, because a shared machine only ever adds time) for
+
+1. ``GridAccumulator.add`` over one scan fed as migrate feeds it: batches of 2^18 points in
+   block order (a stand-in for Hilbert order: each batch covers a compact block of the grid),
+   and ``finish``, on a grid of --nx × --ny cells (the default is the demo scanner's station grid
+   at 0.5 m, as in benchmarks/migrate.py);
+2. ``write_epoch``: the first step (creates the cube) and each append of --scans scans;
+3. the fixed part of an append: the same on a 64 × 64 grid, where there is almost nothing to
+   encode.
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import tempfile
+import time
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+
+import numpy as np
+
+from archive.grids import GridAccumulator, GridSpec, write_epoch
+from archive.grids.binning import EpochGrid
+
+BATCH = 1 << 18  # rows per batch handed to the binner (archive.points.write.BATCH_ROWS)
+
+
+def scan_points(spec: GridSpec, n: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """A scanner-like cloud: dense near the scanner (grid centre-south), sparse far out, a slope."""
+    rng = np.random.default_rng(seed)
+    r = spec.cell * min(spec.nx, spec.ny) * 0.9 * np.sqrt(rng.uniform(0.0005, 1, n)) ** 2
+    a = rng.uniform(0, np.pi, n)
+    x = spec.x0 + spec.cell * spec.nx / 2 + r * np.cos(a)
+    y = spec.y0 + spec.cell * spec.ny * 0.05 + r * np.sin(a)
+    z = 820.0 + 0.05 * (y - spec.y0) + rng.normal(0, 0.05, n)
+    block = 64 * spec.cell  # batches in block order, blocks row after row
+    order = np.lexsort((np.floor((x - spec.x0) / block), np.floor((y - spec.y0) / block)))
+    return x[order], y[order], z[order]
+
+
+def binning(spec: GridSpec, points: int, rounds: int) -> EpochGrid:
+    x, y, z = scan_points(spec, points, 1)
+    add = fin = float("inf")
+    for _ in range(rounds):
+        acc = GridAccumulator(spec)
+        c0 = time.process_time()
+        for i in range(0, points, BATCH):
+            acc.add(x[i:i + BATCH], y[i:i + BATCH], z[i:i + BATCH])
+        c1 = time.process_time()
+        grid = acc.finish()
+        c2 = time.process_time()
+        add, fin = min(add, c1 - c0), min(fin, c2 - c1)
+    calls = -(-points // BATCH)
+    print(f"binning {points:,} points on {spec.nx} x {spec.ny} cells: add {1e3 * add:.0f} ms "
+          f"({1e3 * add / calls:.1f} ms per call, {calls} calls), finish {1e3 * fin:.0f} ms CPU")
+    return grid
+
+
+def steps(spec: GridSpec, epoch: EpochGrid, scans: int, rounds: int, label: str) -> None:
+    t0 = datetime(2026, 9, 1, 6, tzinfo=timezone.utc)
+    best: list[float] | None = None
+    with tempfile.TemporaryDirectory() as tmp:
+        url = str(Path(tmp) / "north.zarr")
+        for _ in range(rounds):
+            shutil.rmtree(url, ignore_errors=True)
+            spent = []
+            for i in range(scans):
+                t = t0 + timedelta(days=i)
+                c = time.process_time()
+                write_epoch(url, spec, t, f"north-{t:%Y%m%dT%H%M%SZ}", epoch)
+                spent.append(time.process_time() - c)
+            best = spent if best is None else [min(a, b) for a, b in zip(best, spent)]
+    assert best is not None
+    appends = best[1:]
+    print(f"cube steps, {label}: first (creates the cube) {1e3 * best[0]:.0f} ms, appends "
+          f"{', '.join(f'{1e3 * v:.0f}' for v in appends)} ms CPU (mean {1e3 * sum(appends) / len(appends):.0f})")
+
+
+def main() -> None:
+    p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--points", type=int, default=1_500_000)
+    p.add_argument("--nx", type=int, default=2523)
+    p.add_argument("--ny", type=int, default=1468)
+    p.add_argument("--scans", type=int, default=5)
+    p.add_argument("--rounds", type=int, default=3)
+    args = p.parse_args()
+    spec = GridSpec(station="north", crs_wkt="EPSG:32633", x0=500000.0, y0=7650000.0, cell=0.5, nx=args.nx, ny=args.ny)
+    epoch = binning(spec, args.points, args.rounds)
+    steps(spec, epoch, args.scans, args.rounds, f"{spec.nx} x {spec.ny} cells")
+    small = GridSpec(station="north", crs_wkt="EPSG:32633", x0=500000.0, y0=7650000.0, cell=0.5, nx=64, ny=64)
+    tiny = EpochGrid(np.full((64, 64), 5.0, np.float32), np.zeros((64, 64), np.float32), np.ones((64, 64), np.uint32), 0)
+    steps(small, tiny, max(args.scans, 11), args.rounds, "64 x 64 cells (the fixed part)")
+
+
+if __name__ == "__main__":
+    main()
