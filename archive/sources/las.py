@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 import struct
+from contextlib import ExitStack
 from typing import Iterator
 
 import numpy as np
@@ -109,8 +110,7 @@ class LasReader:
             yield self.codec.decode(records)
 
     def _arrays(self, chunk_size: int, salvage: bool) -> Iterator[np.ndarray]:
-        for record in self._records(chunk_size, salvage):
-            records = record.array
+        for records in self._records(chunk_size, salvage):
             if records.dtype != self.codec.dtype:
                 raise SourceError(f"{self.relpath}: points have the layout {records.dtype}, the header says {self.codec.dtype}")
             if "gps_time" in records.dtype.names:
@@ -120,8 +120,7 @@ class LasReader:
     def measure(self, chunk_size: int = 4_000_000) -> tuple[float, ...] | None:
         """Count, bounds and time range of the readable points, straight from the raw records."""
         lows, highs = np.full(3, np.iinfo(np.int64).max), np.full(3, np.iinfo(np.int64).min)
-        for record in self._records(chunk_size, salvage=True):
-            raw = record.array
+        for raw in self._records(chunk_size, salvage=True):
             for i, name in enumerate(("X", "Y", "Z")):
                 lows[i] = min(lows[i], int(raw[name].min()))
                 highs[i] = max(highs[i], int(raw[name].max()))
@@ -134,35 +133,57 @@ class LasReader:
         high = [v * e.scale + e.offset for e, v in zip(axes, highs)]
         return (*low, *high)
 
-    def _records(self, chunk_size: int, salvage: bool):
-        """Raw laspy records of the readable points; damage raises unless ``salvage``."""
-        laspy = _laspy()
+    def _records(self, chunk_size: int, salvage: bool) -> Iterator[np.ndarray]:
+        """The readable points' records (structured arrays of ``codec.dtype``); damage raises
+        unless ``salvage``. Uncompressed points are read straight into the array (laspy's reader
+        costs 3x more CPU on the same bytes); LAZ is decompressed by laspy."""
         header = self.header
         if header.problems and not salvage:
             raise DamagedSource(f"{self.relpath}: {'; '.join(header.problems)}; use --salvage to keep the readable points")
         self.tally.problems.extend(p for p in header.problems if p not in self.tally.problems)
         want = self._stored if header.format == "las" else header.declared_count
-        with self._opener() as fh, laspy.open(fh) as reader:
+        with ExitStack() as stack:
+            fh = stack.enter_context(self._opener())
+            if header.format == "las":
+                fh.seek(self._offset)
+                read = lambda n: _read_records(fh, n, self.codec.dtype)  # noqa: E731
+            else:
+                reader = stack.enter_context(_laspy().open(fh))
+                read = lambda n: reader.read_points(n).array  # noqa: E731
             done = 0
             while done < want:
                 n = min(chunk_size, want - done)
                 try:
-                    record = reader.read_points(n)
+                    records = read(n)
                 except Exception as exc:
                     message = f"points unreadable after {done} of {want} ({type(exc).__name__}: {exc})"
                     if not salvage:
                         raise DamagedSource(f"{self.relpath}: {message}; use --salvage to keep the points before it") from None
                     self.tally.problems.append(message)
                     break
-                if len(record) == 0:
+                if len(records) == 0:
                     message = f"file ends after {done} of {want} declared points"
                     if not salvage:
                         raise DamagedSource(f"{self.relpath}: {message}; use --salvage to keep them") from None
                     self.tally.problems.append(message)
                     break
-                done += len(record)
-                self.tally.points += len(record)
-                yield record
+                done += len(records)
+                self.tally.points += len(records)
+                yield records
+
+
+def _read_records(fh, n: int, dtype: np.dtype) -> np.ndarray:
+    """Up to ``n`` whole point records from ``fh`` (ASPRS LAS: fixed-size records, little-endian),
+    fewer where the file ends."""
+    out = np.empty(n, dtype)
+    view = memoryview(out.view(np.uint8))
+    got = 0
+    while got < view.nbytes:
+        step = fh.readinto(view[got:])
+        if not step:
+            break
+        got += step
+    return out[: got // dtype.itemsize]
 
 
 class LasCodec:
