@@ -1,8 +1,8 @@
 """The shelf's STAC catalog: Items per scan, Collections, the search index, and checks.
 
 Public entry points used by migrate, the CLI and tests. They are imported on first use
-(archive/lazy.py): the site file needs only ``archive.catalog.extensions``, not the pystac,
-rasterio and scipy behind the builders.
+(archive/lazy.py): the site file needs only ``archive.catalog.extensions``, not the pystac
+and rasterio behind the builders.
 """
 
 from __future__ import annotations
