@@ -129,8 +129,14 @@ class AxisEncoding:
         if self.text:
             # the correctly rounded quotient of two exact doubles equals float(text)
             return units.astype(np.float64) / 10.0**self.places
-        raw = (units - self._shift) // self._step
-        return raw.astype(np.float64) * self.scale + self.offset
+        step = self._step
+        raw = units - self._shift
+        if step != 1:  # 1 for the usual case, scale and 10^-k equal
+            raw //= step
+        values = raw.astype(np.float64)
+        values *= self.scale
+        values += self.offset
+        return values
 
     def to_dict(self) -> dict:
         return {"scale": self.scale, "offset": self.offset, "places": self.places, "text": self.text,
@@ -145,7 +151,7 @@ class AxisEncoding:
         """float64 coordinates of ``axis`` in ``table`` as the source's reader computes them."""
         column = table.column(axis)
         if pa.types.is_decimal(column.type):
-            return self.to_float(units_of(column))
+            return self.to_float(units_of(column, copy=False))
         return column.to_numpy().astype(np.float64, copy=False)
 
 
