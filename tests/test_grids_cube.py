@@ -258,3 +258,22 @@ def test_new_cube_is_byte_identical_to_xarrays_to_zarr(tmp_path, case):
     assert str(ds["time"].values[0]) == "2026-03-01T06:00:00.000000000"
     assert int(ds["points_outside"].values[0]) == grid.outside
     np.testing.assert_array_equal(ds["elevation"].values[0], quantized(grid.elevation))
+
+
+def test_cube_steps_read_what_xarray_reads_sorted_without_blank_slots(cube):
+    """The page's maps come through zarr alone (cube_steps): same steps, order and values."""
+    from archive.grids.cube import cube_steps
+
+    url, spec = cube
+    write_epoch(url, spec, T0 - timedelta(days=3), sid(-3), epoch(spec, 97.0, 9))  # arrives late: slot 2
+    write_epoch(url, spec, T0 + timedelta(days=5), sid(5), epoch(spec, 105.0, 5))
+    zarr.open_group(url, mode="r+")["scan_id"][1] = ""  # a retired scan's slot
+    steps = cube_steps(url)
+    # reference: xarray.open_zarr (CF time decoding), blank ids dropped, then sorted by time
+    ds = xr.open_zarr(url, zarr_format=3, consolidated=True)
+    ds = ds.isel(time=np.flatnonzero(ds["scan_id"].values != "")).sortby("time")
+    assert steps.scan_ids == [sid(-3), sid(0), sid(5)] == list(ds["scan_id"].values)
+    np.testing.assert_array_equal(steps.times, ds["time"].values)
+    for k in range(3):
+        np.testing.assert_array_equal(steps.read("elevation", k), ds["elevation"][k].values)
+        np.testing.assert_array_equal(steps.read("point_count", k), ds["point_count"][k].values)

@@ -30,6 +30,7 @@ import json
 import math
 import uuid
 import warnings
+from dataclasses import dataclass
 from datetime import datetime, timezone
 
 from typing import TYPE_CHECKING
@@ -338,6 +339,34 @@ def _step_values(spec: GridSpec, time: datetime, scan_id: str, epoch: EpochGrid)
         "points_outside": np.array([epoch.outside], np.uint64),
         "scan_id": np.array([scan_id], dtype=object),
     }
+
+
+@dataclass(frozen=True)
+class CubeSteps:
+    """A cube's live time steps in time order, read through zarr alone (no xarray or dask):
+    for pages and previews that read a few whole epochs, in processes that should not pay for
+    importing xarray. ``open_cube`` gives the same steps as a dataset."""
+
+    group: zarr.Group
+    slots: np.ndarray  # storage index along time of each step
+    times: np.ndarray  # datetime64[ns], whole seconds
+    scan_ids: list[str]
+
+    def read(self, name: str, step: int) -> np.ndarray:
+        """One step's (y, x) map of ``name``, decoded as zarr stores it (NaN where empty)."""
+        return self.group[name][int(self.slots[step])]
+
+
+def cube_steps(url: str, storage_options: dict | None = None) -> CubeSteps:
+    """The steps of the cube at ``url`` that hold a scan, sorted by time as :func:`open_cube` sorts them."""
+    root = zarr.open_group(zarr_store(url, storage_options), mode="r", zarr_format=3, use_consolidated=True)
+    if root["time"].attrs.get("units") != TIME_UNITS:
+        raise ValueError(f"{url}: time is not stored in {TIME_UNITS!r}; rebuild the cube with `scanshelf grid`")
+    ids, seconds = root["scan_id"][:], root["time"][:]
+    live = np.flatnonzero(ids != "")
+    slots = live[np.argsort(seconds[live], kind="stable")]
+    times = seconds[slots].astype("datetime64[s]").astype("datetime64[ns]")
+    return CubeSteps(root, slots, times, [str(v) for v in ids[slots]])
 
 
 def open_cube(
