@@ -556,3 +556,44 @@ def test_hrefs_leaving_the_shelf_are_refused(shelf) -> None:
     problems = verify_shelf(str(root), quick=True).problems
     assert any("escapes the shelf root" in p for p in problems), problems
     assert any("is not relative to the shelf" in p for p in problems), problems
+
+
+@pytest.mark.parametrize("time_units", [None, "seconds since 1970-01-01", "minutes since 2000-01-01 00:00:00",
+                                        "hours since 2026-03-01T06:00:00"])
+def test_grids_are_described_as_xarray_sees_them(tmp_path, time_units):
+    """discover_grids reads the stores through zarr alone; xarray.open_zarr is the reference."""
+    import xarray as xr
+
+    from archive.catalog.grids import discover_grids
+    from archive.catalog.store import ShelfFiles
+
+    rng = np.random.default_rng(5)
+    x, y = 500000.5 + np.arange(30.0), 7650019.5 - np.arange(20.0)
+    wkt = CRS.from_user_input("EPSG:32633").to_wkt()
+    data = {"vy": (("y", "x"), rng.random((20, 30)), {"units": "m/d", "long_name": "northward"}),
+            "vx": (("y", "x"), rng.random((20, 30)), {"units": "m/d"})}
+    coords = {"x": x, "y": y, "spatial_ref": ((), 0, {"crs_wkt": wkt})}
+    encoding = {}
+    if time_units:
+        data = {k: (("time", *dims), np.stack([v, v + 1]), attrs) for k, (dims, v, attrs) in data.items()}
+        coords["time"] = np.array(["2026-03-01T06:00:00", "2026-02-01T18:30:00"], "datetime64[ns]")  # not sorted
+        coords["source"] = ("time", np.array(["a.tif", "b.tif"], dtype=object))
+        encoding["time"] = {"units": time_units, "dtype": "float64" if time_units.startswith("hours") else "int64"}
+    xr.Dataset(data, coords).to_zarr(str(tmp_path / "grids" / "north-displacement.zarr"), zarr_format=3,
+                                     consolidated=True, encoding=encoding)
+    [got] = discover_grids(ShelfFiles(str(tmp_path)))
+    # reference: xarray.open_zarr (its CF decoding, coordinate rules and variable order)
+    ds = xr.open_zarr(str(tmp_path / "grids" / "north-displacement.zarr"), zarr_format=3)
+    assert list(got.dims.items()) == list(ds.sizes.items())
+    assert list(got.variables) == [v for v in ds.data_vars if v != "spatial_ref"] == ["vx", "vy"]  # store order
+    assert got.variables["vy"] == {"dimensions": list(ds["vy"].dims), "unit": "m/d", "description": "northward"}
+    if time_units:
+        assert got.start == datetime(2026, 2, 1, 18, 30, tzinfo=timezone.utc) == utc_of(ds["time"].values.min())
+        assert got.end == datetime(2026, 3, 1, 6, tzinfo=timezone.utc) == utc_of(ds["time"].values.max())
+    else:
+        assert got.start is None and got.end is None
+    assert got.bbox == (500000.0, 7650000.0, 500030.0, 7650020.0) and got.cell == 1.0 and got.crs_code == "EPSG:32633"
+
+
+def utc_of(t: np.datetime64) -> datetime:
+    return datetime.fromisoformat(str(t.astype("datetime64[us]"))).replace(tzinfo=timezone.utc)

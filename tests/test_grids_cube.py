@@ -226,3 +226,54 @@ def test_a_blanked_slot_takes_the_new_scans_time_and_values(cube):
     assert list(ds["scan_id"].values) == [sid(40), sid(1)]
     assert str(ds["time"].values[0]) == "2026-04-10T06:00:00.000000000"
     np.testing.assert_array_equal(ds["elevation"][0].values, quantized(new.elevation))
+
+
+def _files(root: Path) -> dict[str, bytes]:
+    return {p.relative_to(root).as_posix(): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+@pytest.mark.parametrize("case", ["crs", "no-crs", "several-shards"])
+def test_new_cube_is_byte_identical_to_xarrays_to_zarr(tmp_path, case):
+    """The first step goes through zarr alone (no xarray in migrate); the store is what xarray wrote."""
+    from archive.grids.cube import epoch_dataset, map_encoding
+
+    wkt = "" if case == "no-crs" else CRS.from_user_input(EPSG).to_wkt()
+    w, h = (2100.0, 2100.0) if case == "several-shards" else (290.0, 190.0)  # 2110² float32 cells > 16 MB
+    spec = GridSpec.from_bounds("north", (500000.0, 7650000.0, 500000.0 + w, 7650000.0 + h), cell=1.0,
+                                margin=5.0, crs_wkt=wkt)
+    grid = epoch(spec, 100.0, 3)
+    grid.outside = 0 if case == "crs" else 17  # points_outside: no chunk at the fill value, one otherwise
+    url = tmp_path / "ours.zarr"
+    write_epoch(str(url), spec, T0 + timedelta(microseconds=250_000), sid(0), grid)
+    # reference: xarray's own CF encoder and Zarr writer, given the cube's dataset and encoding
+    epoch_dataset(spec, T0 + timedelta(microseconds=250_000), sid(0), grid).to_zarr(
+        str(tmp_path / "xarray.zarr"), zarr_format=3, consolidated=True, mode="w-", encoding=map_encoding(spec),
+        write_empty_chunks=False)
+    ours, theirs = _files(url), _files(tmp_path / "xarray.zarr")
+    assert sorted(ours) == sorted(theirs)
+    assert [name for name in ours if ours[name] != theirs[name]] == []
+    if case == "several-shards":
+        assert {n for n in ours if n.startswith("elevation/c/")} == {"elevation/c/0/0/0", "elevation/c/0/1/0"}
+    ds = xr.open_zarr(str(url), zarr_format=3, consolidated=True)
+    assert str(ds["time"].values[0]) == "2026-03-01T06:00:00.000000000"
+    assert int(ds["points_outside"].values[0]) == grid.outside
+    np.testing.assert_array_equal(ds["elevation"].values[0], quantized(grid.elevation))
+
+
+def test_cube_steps_read_what_xarray_reads_sorted_without_blank_slots(cube):
+    """The page's maps come through zarr alone (cube_steps): same steps, order and values."""
+    from archive.grids.cube import cube_steps
+
+    url, spec = cube
+    write_epoch(url, spec, T0 - timedelta(days=3), sid(-3), epoch(spec, 97.0, 9))  # arrives late: slot 2
+    write_epoch(url, spec, T0 + timedelta(days=5), sid(5), epoch(spec, 105.0, 5))
+    zarr.open_group(url, mode="r+")["scan_id"][1] = ""  # a retired scan's slot
+    steps = cube_steps(url)
+    # reference: xarray.open_zarr (CF time decoding), blank ids dropped, then sorted by time
+    ds = xr.open_zarr(url, zarr_format=3, consolidated=True)
+    ds = ds.isel(time=np.flatnonzero(ds["scan_id"].values != "")).sortby("time")
+    assert steps.scan_ids == [sid(-3), sid(0), sid(5)] == list(ds["scan_id"].values)
+    np.testing.assert_array_equal(steps.times, ds["time"].values)
+    for k in range(3):
+        np.testing.assert_array_equal(steps.read("elevation", k), ds["elevation"][k].values)
+        np.testing.assert_array_equal(steps.read("point_count", k), ds["point_count"][k].values)

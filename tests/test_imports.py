@@ -62,6 +62,29 @@ assert geometry["type"] == "Polygon", geometry
     assert sorted(loaded & {"scipy"}) == []
 
 
+def test_zero_config_migrate_of_las_scans_does_not_load_xarray_or_dask(tmp_path):
+    """A whole ``scanshelf migrate SOURCE SHELF`` run: cubes created and appended, previews,
+    catalog (grids described) and index.html (maps and changes drawn), all without xarray or dask."""
+    from tests import factory
+
+    for i, hour in enumerate((6, 12, 18)):  # three epochs of one station: change maps are drawn
+        factory.write_las(tmp_path / "source" / "north" / f"scan_{i}.las", 20_000, factory.utc(2026, 9, 1, hour), seed=i)
+    factory.write_las(tmp_path / "source" / "south" / "scan.las", 10_000, factory.utc(2026, 9, 2, 6), seed=9)
+    shelf = tmp_path / "shelf"
+    loaded = _loaded_after(f"""
+from click.testing import CliRunner
+from archive.cli import cli
+run = CliRunner().invoke(cli, ["migrate", {str(tmp_path / "source")!r}, {str(shelf)!r}, "-q"])
+assert run.exit_code == 0, run.output
+""")
+    assert {"archive", "zarr", "matplotlib"} <= loaded  # the run did grid and draw
+    assert sorted(loaded & {"xarray", "dask"}) == []
+    # the run made everything a zero-config run makes, so nothing was skipped on the way
+    assert sorted(p.name for p in (shelf / "grids").iterdir()) == ["collection.json", "north.zarr", "south.zarr"]
+    assert len(list((shelf / "previews").iterdir())) == 4
+    assert (shelf / "index.html").read_text().count("data:image/png") == 8  # 2 coverage charts, 2 + 2 maps, 2 changes
+
+
 def test_the_probe_sees_a_heavy_import():
     """The check above can fail: asking for ``elevation_change`` does pull in xarray."""
     loaded = _loaded_after("from archive import elevation_change")

@@ -59,46 +59,93 @@ def store_fingerprint(shelf: ShelfFiles, href: str, memo: HashMemo | None = None
 
 def discover_grids(shelf: ShelfFiles) -> list[GridInfo]:
     """Every ``grids/*.zarr`` on the shelf, described from its own metadata."""
-    import xarray as xr
-
     found = []
     for path in sorted(shelf.fs.glob(shelf.path("grids/*.zarr"))):
         rel = "grids/" + path.rstrip("/").rsplit("/", 1)[-1]
         name = rel[len("grids/") : -len(".zarr")]
         station, _, product = name.partition("-")
-        ds = xr.open_zarr(shelf.fs.get_mapper(path), zarr_format=3, consolidated=None)
-        try:
-            found.append(_describe(ds, rel, station, product or "elevation"))
-        finally:
-            ds.close()
+        found.append(_describe(_CfStore.open(shelf.fs.get_mapper(path)), rel, station, product or "elevation"))
     return found
 
 
-def _describe(ds, rel: str, station: str, product: str) -> GridInfo:
+class _CfStore:
+    """A Zarr v3 store seen as xarray's ``open_zarr`` sees it (variables, coordinates, sizes, in
+    its order), read through zarr alone: describing cubes at the end of every migrate run should
+    not import xarray and dask. Only the small coordinates are read."""
+
+    def __init__(self, group) -> None:
+        self.group = group
+        arrays = dict(group.arrays())
+        self.dims = {n: tuple(a.metadata.dimension_names or ()) for n, a in arrays.items()}
+        coords = set(str(group.attrs.get("coordinates", "")).split())
+        for a in arrays.values():
+            coords.update(str(a.attrs.get("coordinates", "")).split())
+        coords.update(n for n, d in self.dims.items() if d == (n,))  # dimension coordinates
+        self.data_vars = [n for n in arrays if n not in coords]
+        self.coords = [n for n in arrays if n in coords]
+        self.sizes: dict[str, int] = {}
+        for n in self.data_vars + self.coords:
+            for dim, size in zip(self.dims[n], arrays[n].shape):
+                self.sizes.setdefault(dim, int(size))
+
+    @classmethod
+    def open(cls, store) -> _CfStore:
+        import warnings
+
+        import zarr
+
+        with warnings.catch_warnings():  # the cube's Quantize filter is a numcodecs codec: known
+            warnings.filterwarnings("ignore", message="Numcodecs codecs are not in the Zarr version 3", category=UserWarning)
+            return cls(zarr.open_group(store, mode="r", zarr_format=3))
+
+    def attrs(self, name: str) -> dict:
+        return dict(self.group[name].attrs)
+
+    def values(self, name: str) -> np.ndarray:
+        return self.group[name][...]
+
+    def times(self) -> np.ndarray:
+        """The ``time`` coordinate decoded from CF units (integer offsets exactly, else by xarray)."""
+        import numpy as np
+
+        raw, attrs = self.values("time"), self.attrs("time")
+        unit, _, since = str(attrs.get("units", "")).partition(" since ")
+        step = {"days": "D", "hours": "h", "minutes": "m", "seconds": "s", "milliseconds": "ms", "microseconds": "us"}.get(unit)
+        if step and np.issubdtype(raw.dtype, np.integer) and attrs.get("calendar", "standard") in ("standard", "gregorian", "proleptic_gregorian"):
+            try:
+                return np.datetime64(since.strip().replace(" ", "T"), "us") + raw.astype(f"timedelta64[{step}]")
+            except ValueError:
+                pass
+        import xarray as xr  # another encoding: let xarray's CF decoder read it
+
+        return xr.decode_cf(xr.Dataset({"time": ("time", raw, attrs)}))["time"].values
+
+
+def _describe(ds: _CfStore, rel: str, station: str, product: str) -> GridInfo:
     from pyproj import CRS
 
     from archive.catalog.collections import GridInfo  # pystac, pyproj: publish needs only store_fingerprint
 
     crs_wkt = None
     for name in ("spatial_ref", "crs"):
-        if name in ds.variables:
-            crs_wkt = ds[name].attrs.get("crs_wkt") or ds[name].attrs.get("spatial_ref")
+        if name in ds.dims:
+            crs_wkt = ds.attrs(name).get("crs_wkt") or ds.attrs(name).get("spatial_ref")
     if crs_wkt is None:
         raise ValueError(f"{rel} has no spatial_ref/crs_wkt attribute; rewrite the cube with its CRS")
     crs = CRS.from_wkt(crs_wkt)
     auth = crs.to_authority()
-    x, y = ds["x"].values, ds["y"].values
+    x, y = ds.values("x"), ds.values("y")
     cell = float(abs(x[1] - x[0])) if len(x) > 1 else None
     half = (cell or 0.0) / 2
     start = end = None
     if "time" in ds.coords and ds.sizes.get("time", 0):
-        times = ds["time"].values.astype("datetime64[us]")
+        times = ds.times().astype("datetime64[us]")
         start, end = (_utc(t) for t in (times.min(), times.max()))
     variables = {
         v: {
-            "dimensions": list(ds[v].dims),
-            "unit": ds[v].attrs.get("units"),
-            "description": ds[v].attrs.get("long_name"),
+            "dimensions": list(ds.dims[v]),
+            "unit": ds.attrs(v).get("units"),
+            "description": ds.attrs(v).get("long_name"),
         }
         for v in ds.data_vars
         if v not in ("spatial_ref", "crs")
@@ -108,7 +155,7 @@ def _describe(ds, rel: str, station: str, product: str) -> GridInfo:
         station=station,
         product=product,
         variables=variables,
-        dims={k: int(v) for k, v in ds.sizes.items()},
+        dims=dict(ds.sizes),
         start=start,
         end=end,
         bbox=(float(x.min()) - half, float(y.min()) - half, float(x.max()) + half, float(y.max()) + half),

@@ -11,16 +11,21 @@ from __future__ import annotations
 import io
 from collections.abc import Sequence
 from datetime import datetime
+from typing import TYPE_CHECKING
 
 import matplotlib.dates as mdates
 import matplotlib.ticker as mticker
 import numpy as np
-import xarray as xr
 from PIL import Image, ImageDraw
 
 from archive.report.health import Gap
 from archive.report.previews import _array_extent, _block_mean, change_png, crop_to_data, preview_png
 from archive.report.raster import Scale, colorize, font, map_png
+
+if TYPE_CHECKING:
+    import xarray as xr
+
+    from archive.report.previews import GridMap
 
 INK = "#1f2a30"
 SCAN = "#2f6f73"
@@ -124,7 +129,7 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
     return buf.getvalue()
 
 
-def elevation_map(elevation: xr.DataArray, title: str, crop: bool = True) -> bytes:
+def elevation_map(elevation: xr.DataArray | GridMap, title: str, crop: bool = True) -> bytes:
     """One epoch's elevation, hillshaded, as the shelf's previews draw it."""
     return preview_png(elevation, title=title, crop=crop)
 
@@ -134,7 +139,7 @@ def change_map(change, title: str, crop: bool = False) -> bytes:
     return change_png(change, title, crop=crop)
 
 
-def density_map(point_count: xr.DataArray, title: str, crop: bool = True) -> bytes:
+def density_map(point_count: xr.DataArray | GridMap, title: str, crop: bool = True) -> bytes:
     """Points per square metre of one epoch, log colours stretched between the 2nd and 98th
     percentiles: a few very dense cells next to the scanner no longer push the rest of the map
     into one end of the palette. A grid too big to show cell by cell shows the points per m² of

@@ -13,7 +13,7 @@ import logging
 import os
 import posixpath
 import uuid
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from urllib.parse import quote, urlsplit
@@ -21,9 +21,9 @@ from urllib.parse import quote, urlsplit
 import numpy as np
 
 from archive import layout
-from archive.grids import open_cube, read_spec
-from archive.grids.change import epoch_change
+from archive.grids import read_spec
 from archive.report import charts
+from archive.report.previews import GridMap
 from archive.report.health import GAP_FACTOR, Problem, ShelfHealth, StationHealth, read_health
 from archive.report.reuse import cube_key, earlier_blocks, wrap
 from archive.storage import filesystem, is_local
@@ -198,64 +198,51 @@ def _maps(shelf_url: str, storage_options: dict | None, st: StationHealth, notes
 def _draw_maps(cube_url: str, storage_options: dict | None, st: StationHealth, notes: list[str]) -> str:
     """Latest elevation, point density, change over the last interval and over the record.
 
-    The few map-sized reads run on dask's synchronous scheduler, given as a function: named
-    schedulers make dask import its distributed package first (most of a CPU-second), and a
-    thread pool buys nothing for reads done one after another.
+    The few whole epochs are read through zarr alone (archive.grids.cube.cube_steps): a page
+    built at the end of every migrate run should not import xarray and dask for four maps.
     """
-    import dask
-    from dask.local import get_sync
+    from archive.grids.cube import cube_steps
 
-    with dask.config.set(scheduler=get_sync):
-        return _draw_maps_now(cube_url, storage_options, st, notes)
-
-
-def _draw_maps_now(cube_url: str, storage_options: dict | None, st: StationHealth, notes: list[str]) -> str:
     try:
         spec = read_spec(cube_url, storage_options)
         if spec is None:
             notes.append(f"station {st.station}: no elevation cube ({layout.grid_path(st.station)})")
             return '<p class="quiet">No elevation cube for this station yet, so no maps.</p>'
-        cube = open_cube(cube_url, storage_options)
+        steps = cube_steps(cube_url, storage_options)
     except (OSError, ValueError, KeyError) as exc:
         notes.append(f"station {st.station}: cannot open {layout.grid_path(st.station)}: {exc}")
         return f'<p class="quiet">The elevation cube could not be read: {html.escape(str(exc))}</p>'
-    if cube.sizes["time"] == 0:
+    times, ids = steps.times, steps.scan_ids
+    if len(times) == 0:
         return '<p class="quiet">The elevation cube holds no epochs yet.</p>'
-    times = cube["time"].values
-    ids = [str(v) for v in cube["scan_id"].values]
     # the epochs the maps and changes use (first, last but one, last), each read and decoded once:
     # the latest is in three pictures
-    used = sorted({0, len(times) - 2, len(times) - 1} - {-1})
-    maps = cube[["elevation"]].isel(time=used).load()
-    latest = cube.isel(time=-1)
-    elevation = maps["elevation"].isel(time=-1)
-    window = _data_window(elevation)  # every map of the station shows this extent: one scale bar
+    maps = {i: steps.read("elevation", i) for i in sorted({0, len(times) - 2, len(times) - 1} - {-1})}
+    elevation = maps[len(times) - 1]
+    rows, cols = _data_window(elevation)  # every map of the station shows this extent: one scale bar
+    x, y = spec.x[cols], spec.y[rows]
     figures = [
-        _figure(charts.elevation_map(elevation.isel(window), f"elevation, {ids[-1]}"),
+        _figure(charts.elevation_map(GridMap(elevation[rows, cols], x, y), f"elevation, {ids[-1]}"),
                 f"Elevation map of scan {ids[-1]}", f"Latest epoch ({_when(_utc(times[-1]))}), hillshaded."),
-        _figure(charts.density_map(latest["point_count"].isel(window).load(), f"point density, {ids[-1]}"),
+        _figure(charts.density_map(GridMap(steps.read("point_count", len(times) - 1)[rows, cols], x, y),
+                                   f"point density, {ids[-1]}"),
                 f"Point density of scan {ids[-1]}",
                 "Points per m² in each grid cell of the latest epoch (log colours, 2nd to 98th percentile). "
                 "Sparse cells make noisy elevations."),
     ]
     pairs = []
     if len(times) >= 2:
-        pairs.append(("last interval", -2, -1))
+        pairs.append(("last interval", len(times) - 2, len(times) - 1))
     if len(times) >= 3:
-        pairs.append(("whole record", 0, -1))
+        pairs.append(("whole record", 0, len(times) - 1))
     for label, i, j in pairs:
-        try:
-            change = epoch_change(maps, _utc(times[i]), _utc(times[j]), spec.crs_wkt)
-        except (OSError, ValueError) as exc:
-            notes.append(f"station {st.station}: change over the {label} not drawn: {exc}")
-            continue
-        change = replace(change, change=change.change.isel(window))
+        change = (maps[j] - maps[i]).astype(np.float32)  # as archive.grids.change.epoch_change computes it
         figures.append(_figure(
-            charts.change_map(change, f"elevation change, {label}"),
+            charts.change_map(GridMap(change[rows, cols], x, y), f"elevation change, {label}"),
             f"Elevation change over the {label} at station {st.station}",
-            f"Change over the {label}: {change.scan1} − {change.scan0} ({_when(change.time0)} → "
-            f"{_when(change.time1)}); "
-            f"{change.valid_cells:,} cells hold both epochs. Red lowering, blue raising.",
+            f"Change over the {label}: {ids[j]} − {ids[i]} ({_when(_utc(times[i]))} → "
+            f"{_when(_utc(times[j]))}); "
+            f"{int(np.isfinite(change).sum()):,} cells hold both epochs. Red lowering, blue raising.",
         ))
     if len(times) == 2:
         figures.append('<p class="quiet">Two epochs: the last interval is the whole record.</p>')
@@ -264,13 +251,13 @@ def _draw_maps_now(cube_url: str, storage_options: dict | None, st: StationHealt
     return '<div class="maps">' + "\n".join(figures) + "</div>"
 
 
-def _data_window(elevation) -> dict[str, slice]:
+def _data_window(elevation: np.ndarray) -> tuple[slice, slice]:
     """Rows and columns of the cube that hold data in ``elevation`` (all of it when none do)."""
-    held = np.isfinite(elevation.transpose("y", "x").values)
+    held = np.isfinite(elevation)
     rows, cols = np.flatnonzero(held.any(axis=1)), np.flatnonzero(held.any(axis=0))
     if not rows.size:
-        return {}
-    return {"y": slice(int(rows[0]), int(rows[-1]) + 1), "x": slice(int(cols[0]), int(cols[-1]) + 1)}
+        return slice(None), slice(None)
+    return slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1)
 
 
 def _problem_table(problems: list[Problem], caption: str) -> str:

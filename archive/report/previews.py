@@ -10,14 +10,31 @@ do not wash out the map. Both carry a colour bar as tall as the map and a scale 
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
 import numpy as np
-import xarray as xr
 from matplotlib.colors import LightSource
 
 from archive.grids.binning import EpochGrid
 from archive.grids.spec import GridSpec
 from archive.report.raster import Scale, colorize, map_png
 from archive.storage import filesystem
+
+if TYPE_CHECKING:
+    import xarray as xr
+
+
+@dataclass(frozen=True)
+class GridMap:
+    """One 2-D map on a grid's cell centres: ``values`` (y, x) and the ``x``, ``y`` coordinates.
+
+    What a picture needs from a cube, read through zarr alone: migrate and the shelf's page
+    draw maps without importing xarray and dask (about 0.4 CPU-second per process)."""
+
+    values: np.ndarray
+    x: np.ndarray
+    y: np.ndarray
 
 
 def _save(png: bytes, url: str, storage_options: dict | None) -> None:
@@ -36,6 +53,10 @@ def _elevation_of(data, spec: GridSpec | None) -> tuple[np.ndarray, tuple[float,
         if spec is None:
             raise ValueError("render_preview of an EpochGrid needs its GridSpec (spec=...)")
         return data.elevation, (spec.x0, spec.x1, spec.y0, spec.y1), spec.cell
+    if isinstance(data, GridMap):
+        return _array_extent(data)
+    import xarray as xr  # already loaded by whoever made the Dataset or DataArray
+
     if isinstance(data, xr.Dataset):
         data = data["elevation"]
     if "time" in data.dims:
@@ -45,10 +66,13 @@ def _elevation_of(data, spec: GridSpec | None) -> tuple[np.ndarray, tuple[float,
     return _array_extent(data)
 
 
-def _array_extent(da: xr.DataArray) -> tuple[np.ndarray, tuple[float, float, float, float], float]:
-    x, y = da["x"].values, da["y"].values
+def _array_extent(da: xr.DataArray | GridMap) -> tuple[np.ndarray, tuple[float, float, float, float], float]:
+    if isinstance(da, GridMap):
+        x, y, values = da.x, da.y, np.asarray(da.values, dtype=np.float64)
+    else:
+        x, y = da["x"].values, da["y"].values
+        values = np.asarray(da.transpose("y", "x").values, dtype=np.float64)
     cell = float(abs(x[1] - x[0])) if x.size > 1 else 1.0
-    values = np.asarray(da.transpose("y", "x").values, dtype=np.float64)
     if y.size > 1 and y[1] > y[0]:  # south-up input: flip to north-up
         values, y = values[::-1], y[::-1]
     half = cell / 2
@@ -91,7 +115,7 @@ def crop_to_data(z: np.ndarray, extent: tuple[float, float, float, float], cell:
 
 def preview_png(data, spec: GridSpec | None = None, title: str | None = None, units: str = "m",
                 crop: bool = True) -> bytes:
-    """Hillshaded elevation of one epoch (EpochGrid + spec, Dataset or DataArray) as PNG bytes.
+    """Hillshaded elevation of one epoch (EpochGrid + spec, GridMap, Dataset or DataArray) as PNG bytes.
 
     ``crop=False`` keeps the given extent (the health page crops all maps of a station alike).
     """
@@ -122,7 +146,7 @@ def render_preview(data, path: str, spec: GridSpec | None = None, title: str | N
 
 
 def change_png(change, title: str | None = None, crop: bool = False) -> bytes:
-    """A change map (ChangeResult or DataArray of metres) with colours centred on zero, as PNG bytes."""
+    """A change map (ChangeResult, GridMap or DataArray of metres) with colours centred on zero, as PNG bytes."""
     da = getattr(change, "change", change)
     if title is None and hasattr(change, "scan0"):
         title = f"{change.scan1} − {change.scan0}"
