@@ -11,6 +11,7 @@ from datetime import date, datetime
 from decimal import Decimal
 from typing import TYPE_CHECKING, Iterator, Protocol
 
+import numpy as np
 import pyarrow as pa
 
 from archive.points.coords import AxisEncoding, units_of
@@ -56,13 +57,16 @@ class ReadTally:
     max_time: float | None = None
     problems: list[str] = field(default_factory=list)
 
-    def note_times(self, times: pa.Array | None) -> None:
+    def note_times(self, times: pa.Array | np.ndarray | None) -> None:
+        """Widen the time range by ``times``; NaN is skipped as Arrow's min_max skips it."""
         if times is None or len(times) == 0:
             return
-        import pyarrow.compute as pc
+        if isinstance(times, np.ndarray):  # a strided view of the records: no copy
+            lo, hi = float(np.fmin.reduce(times)), float(np.fmax.reduce(times))
+        else:
+            import pyarrow.compute as pc
 
-        lo, hi = pc.min_max(times).values()
-        lo, hi = lo.as_py(), hi.as_py()
+            lo, hi = (v.as_py() for v in pc.min_max(times).values())
         if lo is None:
             return
         self.min_time = lo if self.min_time is None else min(self.min_time, lo)

@@ -114,7 +114,7 @@ class LasReader:
             if records.dtype != self.codec.dtype:
                 raise SourceError(f"{self.relpath}: points have the layout {records.dtype}, the header says {self.codec.dtype}")
             if "gps_time" in records.dtype.names:
-                self.tally.note_times(numeric_array(records["gps_time"]))
+                self.tally.note_times(records["gps_time"])
             yield records
 
     def measure(self, chunk_size: int = 4_000_000) -> tuple[float, ...] | None:
@@ -125,7 +125,7 @@ class LasReader:
                 lows[i] = min(lows[i], int(raw[name].min()))
                 highs[i] = max(highs[i], int(raw[name].max()))
             if "gps_time" in raw.dtype.names:
-                self.tally.note_times(numeric_array(raw["gps_time"]))
+                self.tally.note_times(raw["gps_time"])
         if self.tally.points == 0:
             return None
         axes = [self.header.axes[a] for a in "xyz"]
