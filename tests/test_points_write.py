@@ -192,6 +192,19 @@ def test_metadata_and_encodings(memory_file) -> None:
     assert pq.read_schema(path).field("x").type == pa.decimal128(18, 3)
 
 
+def test_file_is_what_pyarrow_writes_for_decimal128_columns(memory_file, tmp_path) -> None:
+    """Coordinates travel as decimal64 in memory; the file must not show it."""
+    from archive.points.write import Encoding
+
+    path, _, _ = memory_file
+    table = pq.read_table(path)  # decimal128 x, y, z, the file's key-value metadata as schema metadata
+    assert table.schema.field("x").type == pa.decimal128(18, 3)
+    reference = tmp_path / "reference.parquet"
+    # reference: pyarrow's own writer, given decimal128 columns and the same options
+    pq.write_table(table, reference, row_group_size=GROUP, **Encoding().writer_options(table.schema))
+    assert open(reference, "rb").read() == open(path, "rb").read()
+
+
 def test_duckdb_reads_the_same_points(memory_file) -> None:
     duckdb = pytest.importorskip("duckdb") if os.environ.get("CI") != "true" else __import__("duckdb")
     path, written, _ = memory_file

@@ -159,7 +159,8 @@ def decimal_from_units(units: np.ndarray, places: int) -> pa.Array:
     """int64 counts of 10^-places → DECIMAL(18, places) as Arrow's decimal64, sharing the buffer.
 
     Parquet stores DECIMAL(18, k) as INT64 either way; decimal64 skips building 16-byte values
-    that the writer would narrow again. Files carry no Arrow schema, so readers get decimal128.
+    that the writer would narrow again. The file's Arrow schema says decimal128, so readers get
+    decimal128 (see write.py).
     """
     units = np.ascontiguousarray(units, dtype=np.int64)
     return pa.Array.from_buffers(pa.decimal64(MAX_DIGITS, places), units.size, [None, pa.py_buffer(units)])

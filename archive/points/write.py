@@ -286,6 +286,7 @@ def _values(column: pa.ChunkedArray) -> np.ndarray:
 def _column_info(field: pa.Field, m: _Moments | None) -> ColumnInfo:
     t = field.type
     size = 8 if field.name in COORDS else max(1, getattr(t, "bit_width", 8) // 8)
+    # the type a reader gets back (the footer's Arrow schema says decimal128, see _key_values)
     name = str(pa.decimal128(t.precision, t.scale)) if pa.types.is_decimal(t) else str(t)
     if m is None or m.n == 0:
         return ColumnInfo(field.name, name, size)
