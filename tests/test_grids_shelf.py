@@ -82,3 +82,45 @@ def test_grid_and_change_commands(tmp_path):
     assert abs(median + 0.25) < 0.01  # offsets by time: T0 +0.25 m, T0+20 d +0.00 m
     assert "Example" in grid_command.help and "Example" in change_command.help
     assert xr.open_zarr(tmp_path / "grids" / "north.zarr").sizes["time"] == 3
+
+
+def test_regrid_bins_the_coordinates_migrate_binned(tmp_path):
+    """Re-gridding reads x, y, z as the LAS reader computes them, as migrate does.
+
+    With offset 0.1 and scale 0.001, X * scale + offset lands one float step below a whole metre
+    for most X near -5.2e8 (x near -524 km, a local frame), where the decimal cast gives the metre
+    itself: every point on such a cell edge would change cell between migrate and `scanshelf grid`.
+    """
+    import laspy
+
+    from archive.migrate import migrate
+
+    rng = np.random.default_rng(4)
+    header = laspy.LasHeader(point_format=6, version="1.4")
+    header.scales = np.array([0.001, 0.001, 0.001])
+    header.offsets = np.array([0.1, 0.1, 0.0])
+    las = laspy.LasData(header)
+    n = 4_000
+    metres = rng.integers(-524_300, -524_260, (2, n))
+    edge = rng.random((2, n)) < 0.5  # half of the coordinates exactly on whole metres
+    las.X, las.Y = np.where(edge, metres * 1000 - 100, metres * 1000 + rng.integers(0, 1000, (2, n))).astype(np.int32)
+    las.Z = rng.integers(10_000, 12_000, n).astype(np.int32)
+    las.gps_time = 1.4e9 + np.arange(n) * 1e-3
+    source = tmp_path / "source" / "north" / "north_20260301_080000.las"
+    source.parent.mkdir(parents=True)
+    las.write(str(source))
+    shelf = tmp_path / "shelf"
+    result = migrate(str(tmp_path / "source"), str(shelf), crs="none", cell=1.0)
+    assert result.points == n and not result.failed, result.summary()
+    cube = shelf / "grids" / "north.zarr"
+    spec = read_spec(str(cube))
+    # reference: laspy's scaled coordinates (X * scale + offset, as the LAS specification reads them)
+    back = laspy.read(str(source))
+    cols = np.floor((np.asarray(back.x) - spec.x0) / spec.cell).astype(int)
+    rows = spec.ny - 1 - np.floor((np.asarray(back.y) - spec.y0) / spec.cell).astype(int)
+    expected = np.zeros((spec.ny, spec.nx), np.uint32)
+    np.add.at(expected, (rows, cols), 1)
+    np.testing.assert_array_equal(open_cube(str(cube))["point_count"].isel(time=0).values, expected)
+    (regridded,) = grid_shelf(str(shelf), series=False)
+    assert regridded.points == n
+    np.testing.assert_array_equal(open_cube(str(cube))["point_count"].isel(time=0).values, expected)

@@ -68,12 +68,18 @@ def _file_facts(fs, path: str) -> tuple[tuple[float, float, float, float], str]:
 
 
 def _bin_file(fs, path: str, spec: GridSpec):
+    """Bin one points file, its coordinates as the source's reader computed them (the file's
+    ``axes`` metadata), as migrate binned them: a cast of the decimal can differ from a LAS
+    reader's X * scale + offset by one float step and move a point on a cell edge."""
+    from archive.query.points import axes_of
+
     acc = GridAccumulator(spec)
     with fs.open(path, "rb") as f:
         pf = pq.ParquetFile(f)
+        axes = axes_of(pf.metadata)
         for g in range(pf.num_row_groups):
             t = pf.read_row_group(g, columns=["x", "y", "z"])
-            acc.add(*(pc.cast(t[c], pa.float64()).to_numpy() for c in "xyz"))
+            acc.add(*(axes[c].column(t, c) if c in axes else pc.cast(t[c], pa.float64()).to_numpy() for c in "xyz"))
     return acc.finish()
 
 
