@@ -199,7 +199,7 @@ def test_two_percent_read_from_nginx_log(nginx, shelf_dir):
     print(f"nginx log: {len(hits)} requests, {sent:,} bytes of a {scans[0]['size']:,}-byte file "
           f"for {area:.1%} of its area ({table.num_rows} points)")
     assert 0.015 < area < 0.025
-    assert all(status == 206 for _, _, status, _ in hits)  # range requests only
+    assert [h for h in hits if h[2] != 206] == []  # range requests only
     assert len(hits) <= 3
     assert sent < 0.25 * scans[0]["size"]
     assert (counted.requests, counted.bytes) == (len(hits), sent)  # Shelf.io agrees with the server
