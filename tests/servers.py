@@ -265,26 +265,30 @@ class Nginx:
     def mark(self) -> int:
         return self.log.stat().st_size if self.log.exists() else 0
 
-    def hits(self, since: int = 0, at_least: int = 0, timeout: float = 10.0) -> list[tuple[str, str, int, int]]:
-        """(method, uri, status, body bytes) per request logged after offset ``since``.
+    def hits(self, since: int = 0, at_least: int = 0, uri_has: str = "", timeout: float = 10.0) -> list[tuple[str, str, int, int]]:
+        """(method, uri, status, body bytes) per request logged after offset ``since`` whose uri
+        contains ``uri_has``.
 
         nginx writes a request's log line after it has sent the response, so a client can have
-        its bytes before the line exists: wait (up to ``timeout`` s) until ``at_least`` lines are in.
+        its bytes before the line exists, and a request made before ``since`` can be logged after
+        it: wait (up to ``timeout`` s) until ``at_least`` matching lines are in.
         """
         deadline = time.monotonic() + timeout
         while True:
             with open(self.log, "rb") as f:
                 f.seek(since)
                 data = f.read()
-            lines = data.decode().splitlines() if data.endswith(b"\n") else data.decode().splitlines()[:-1]
-            if len(lines) >= at_least or time.monotonic() > deadline:
-                break
+            lines = data.decode().splitlines()
+            if data and not data.endswith(b"\n"):
+                lines = lines[:-1]  # a line still being written
+            out = []
+            for line in lines:
+                method, uri, status, nbytes = line.split(" ")[:4]
+                if uri_has in uri:
+                    out.append((method, uri, int(status), int(nbytes)))
+            if len(out) >= at_least or time.monotonic() > deadline:
+                return out
             time.sleep(0.02)
-        out = []
-        for line in lines:
-            method, uri, status, nbytes = line.split(" ")[:4]
-            out.append((method, uri, int(status), int(nbytes)))
-        return out
 
 
 @pytest.fixture(scope="session")
