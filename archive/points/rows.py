@@ -19,7 +19,7 @@ from typing import Protocol
 import numpy as np
 import pyarrow as pa
 
-from .coords import MAX_DIGITS, units_of
+from .coords import MAX_DIGITS, decimal_from_units, units_of
 from .hilbert import SiteGrid
 
 COORDS = ("x", "y", "z")
@@ -44,12 +44,6 @@ class Rows:
 
     codec: RowCodec
     chunks: Iterable[np.ndarray]
-
-
-def decimal64_of_units(units: np.ndarray, places: int) -> pa.Array:
-    """int64 counts of 10^-places → decimal64(18, places), sharing the buffer."""
-    units = np.ascontiguousarray(units, dtype=np.int64)
-    return pa.Array.from_buffers(pa.decimal64(MAX_DIGITS, places), units.size, [None, pa.py_buffer(units)])
 
 
 def numeric_array(values: np.ndarray) -> pa.Array:
@@ -145,7 +139,7 @@ class TableCodec:
         for i, f in enumerate(self.fields):
             values = records[f"c{i}"]
             if f.kind == "units":
-                arrays.append(decimal64_of_units(values, f.type.scale))
+                arrays.append(decimal_from_units(values, f.type.scale))
                 continue
             valid = records[f"v{i}"] if f.nullable else None
             mask, nulls = None, 0
