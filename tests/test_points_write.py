@@ -11,7 +11,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from archive.points.coords import decimal_from_units, units_of
@@ -252,6 +252,34 @@ def test_group_of_rows_equals_rank_in_a_full_sort(keys, size, cuts) -> None:
     rank = np.empty(len(k), dtype=np.int64)
     rank[np.argsort(k, kind="stable")] = np.arange(len(k))
     np.testing.assert_array_equal(_group_of_rows(parts, size), rank // size)
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    spread=st.lists(st.integers(0, 2**20 - 1), max_size=100),
+    dense=st.lists(st.integers(0, 40), min_size=1, max_size=600),
+    wide=st.booleans(),
+    size=st.integers(1, 60),
+    seed=st.integers(0, 2**32 - 1),
+    parts=st.integers(1, 4),
+)
+@example(spread=[5, 900_000], dense=list(range(41)) * 10, wide=False, size=7, seed=0, parts=2)
+@example(spread=[5, 900_000], dense=list(range(41)) * 10, wide=True, size=7, seed=0, parts=3)
+def test_group_of_rows_with_a_dense_spot_equals_rank_in_a_full_sort(spread, dense, wide, size, seed, parts) -> None:
+    """Most rows in a few neighbouring keys (the ground next to a scanner), the rest spread over
+    the range: the dense bin straddles many groups. With 62-bit keys the finer count cannot reach
+    single keys and the last rows are sorted."""
+    shift = 42 if wide else 12
+    k = np.concatenate([np.array(spread, dtype=np.uint64) << np.uint64(shift),
+                        np.uint64(3 << shift) + np.array(dense, dtype=np.uint64)])
+    k = k[np.random.default_rng(seed).permutation(len(k))]
+    if not wide:
+        k = k.astype(np.uint32)
+    pieces = [Part(piece, {}, {}) for piece in np.array_split(k, parts) if len(piece)]
+    # reference: numpy's stable argsort gives the rank in (key, position) order
+    rank = np.empty(len(k), dtype=np.int64)
+    rank[np.argsort(k, kind="stable")] = np.arange(len(k))
+    np.testing.assert_array_equal(_group_of_rows(pieces, size), rank // size)
 
 
 @settings(max_examples=40, deadline=None)

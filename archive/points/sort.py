@@ -194,31 +194,64 @@ def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
     """Row group number (rank // size in (key, position) order) of every row, without a full sort.
 
     Keys are binned into at most 2^20 bins; a bin whose rank range lies inside one group gives all
-    its rows that group, and only the rows of the few bins that straddle a group boundary are
-    sorted. Counting-sorting rows by group (arrow's stable sort) then gives each group's rows in
-    position order.
+    its rows that group. The rows of the few bins that straddle a group boundary are counted again,
+    finer (`_straddling_groups`). Counting-sorting rows by group (arrow's stable sort) then gives
+    each group's rows in position order.
     """
     kmin = min(int(p.keys.min()) for p in parts if len(p))
     kmax = max(int(p.keys.max()) for p in parts if len(p))
     shift = max(0, (kmax - kmin).bit_length() - BIN_BITS)
     bins = [((p.keys - p.keys.dtype.type(kmin)) >> shift).astype(np.int32) for p in parts]
     count = sum(np.bincount(b, minlength=((kmax - kmin) >> shift) + 1) for b in bins)
-    after = np.cumsum(count)
-    before = after - count
+    before = np.cumsum(count) - count
+    first, straddle = _groups_of_bins(before, count, size)
+    dtype = np.uint16 if (before[-1] + count[-1]) // size < 2**16 - 2 else np.uint32
+    mark = np.iinfo(dtype).max  # straddling bins: one gather gives groups and marks
+    marked = np.where(straddle, mark, first).astype(dtype)
+    group = np.concatenate([marked[b] for b in bins])
+    del bins
+    hits, keys, start = [], [], 0
+    for p in parts:
+        h = np.flatnonzero(group[start : start + len(p)] == mark)
+        hits.append(h + start)
+        keys.append(p.keys[h])
+        start += len(p)
+    if sum(len(h) for h in hits):
+        rel = np.concatenate(keys).astype(np.int64) - kmin
+        group[np.concatenate(hits)] = _straddling_groups(rel, shift, before, straddle, size)
+    return group
+
+
+def _groups_of_bins(before: np.ndarray, count: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
+    """Group of each bin's first row, and whether the bin's rows fall into more than one group."""
     first = before // size
-    straddle = (count > 0) & (first != (after - 1) // size)
-    dtype = np.uint16 if after[-1] // size < 2**16 - 1 else np.uint32
-    group = np.concatenate([first.astype(dtype)[b] for b in bins])
-    if straddle.any():
-        starts = np.cumsum([0] + [len(p) for p in parts])
-        hits = [np.flatnonzero(straddle[b]) for b in bins]
-        pos = np.concatenate([h + s for h, s in zip(hits, starts)])
-        keys = np.concatenate([p.keys[h] for p, h in zip(parts, hits)])
-        order = _stable_order(keys - keys.dtype.type(kmin))  # positions ascend, so ties keep arrival order
-        pos, keys = pos[order], keys[order]
-        sub_bins = ((keys - keys.dtype.type(kmin)) >> shift).astype(np.int64)
-        within = np.arange(len(pos)) - np.searchsorted(sub_bins, sub_bins, side="left")
-        group[pos] = (before[sub_bins] + within) // size
+    return first, (count > 0) & (first != (before + count - 1) // size)
+
+
+def _straddling_groups(rel: np.ndarray, shift: int, before: np.ndarray, straddle: np.ndarray, size: int) -> np.ndarray:
+    """Groups of the rows (keys minus kmin `rel`, in position order) of bins `rel >> shift` that
+    straddle a group boundary.
+
+    Each straddling bin is cut into 2^fine sub-bins counted on one histogram of those bins alone,
+    so sub-bins are single keys where that histogram stays small (a dense spot, such as the ground
+    next to a scanner, can put a million rows into one bin); only the rows of sub-bins that straddle
+    a boundary again are sorted, by (key, position).
+    """
+    bins = np.flatnonzero(straddle)
+    fine = min(shift, max(0, BIN_BITS - len(bins).bit_length()))
+    ordinal = np.cumsum(straddle) - 1
+    sub = (ordinal[rel >> shift] << fine) | ((rel >> (shift - fine)) & ((1 << fine) - 1))
+    count = np.bincount(sub, minlength=len(bins) << fine).reshape(len(bins), -1)
+    before = (np.cumsum(count, axis=1) - count + before[bins][:, None]).ravel()
+    count = count.ravel()
+    first, again = _groups_of_bins(before, count, size)
+    group = first[sub]
+    hits = np.flatnonzero(again[sub])
+    if hits.size:
+        order = hits[_stable_order(rel[hits])]  # hits ascend, so ties keep position order
+        sorted_sub = sub[order]
+        within = np.arange(len(order)) - np.searchsorted(sorted_sub, sorted_sub, side="left")
+        group[order] = (before[sorted_sub] + within) // size
     return group
 
 
