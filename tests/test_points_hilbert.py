@@ -86,6 +86,28 @@ def test_keys_of_units_use_the_exact_cell(points, places: int) -> None:
     np.testing.assert_array_equal(grid.keys(real[:, 0], real[:, 1])[inside], expected[inside])
 
 
+@settings(max_examples=40, deadline=None)
+@given(
+    base=st.integers(-2**31, 2**31 - 2**17),
+    near=st.lists(st.tuples(st.integers(0, 2**17), st.integers(0, 2**17)), min_size=2, max_size=50),
+    step=st.sampled_from([1, 25, 1000, 10**6, 10**9]),
+    shift=st.sampled_from([0, 500_000_000, -123_456, 7_650_000 * 10**6, 2**60]),
+)
+def test_keys_of_las_integers_equal_keys_of_their_units(base, near, step, shift) -> None:
+    """LAS integers with their axis's (step, shift) give the keys of the units X * step + shift
+    (points near each other, so that a cell is a step or two wide and an error of one unit shows)."""
+    raw = [(base + dx, base + dy) for dx, dy in near]
+    pairs = np.array(raw, dtype=np.int32)
+    # reference: the units in Python's exact integer arithmetic (int64 holds them for these values)
+    units = np.array([[x * step + shift, y * step + shift] for x, y in raw], dtype=np.int64)
+    lo, hi = units.min(), units.max()
+    grid = SiteGrid.from_bounds(float(lo), float(lo), float(hi), float(hi))
+    np.testing.assert_array_equal(
+        grid.keys_of_units(pairs[:, 0], pairs[:, 1], 0, (step, step), (shift, shift)),
+        grid.keys_of_units(units[:, 0], units[:, 1], 0),
+    )
+
+
 def test_bad_grids_are_refused() -> None:
     with pytest.raises(ValueError, match="size"):
         SiteGrid(0.0, 0.0, 0.0)

@@ -85,6 +85,11 @@ class AxisEncoding:
         """offset * 10^k as an exact integer."""
         return int(Decimal(repr(self.offset)) * 10**self.places)
 
+    @property
+    def las_units(self) -> tuple[int, int]:
+        """(step, shift) of a decimal axis: the stored units are X * step + shift."""
+        return self._step, self._shift
+
     def from_las(self, raw: np.ndarray) -> pa.Array:
         """LAS integers X → the stored column of X*scale + offset (exact DECIMAL, or float64).
 

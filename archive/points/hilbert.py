@@ -164,14 +164,22 @@ class SiteGrid:
             lambda v, axis: _cell(v, origin[axis], scale, self.cells),
         )
 
-    def keys_of_units(self, ux: np.ndarray, uy: np.ndarray, places: int) -> np.ndarray:
-        """Hilbert keys of scaled integers (real = units * 10**-places), as stored in DECIMAL columns."""
+    def keys_of_units(
+        self, ux: np.ndarray, uy: np.ndarray, places: int,
+        steps: tuple[int, int] = (1, 1), shifts: tuple[int, int] = (0, 0),
+    ) -> np.ndarray:
+        """Hilbert keys of scaled integers (real = units * 10**-places), as stored in DECIMAL columns.
+
+        The units may come as integers i with units = i * step + shift per axis (a LAS file's X
+        and its axis encoding, see coords.py): they are then made block by block, in cache, and
+        never held whole.
+        """
         unit = 10.0**places
         scale = self.cells / (self.size * unit)
         origin = (self.x0 * unit, self.y0 * unit)
         return _blockwise(
             np.asarray(ux).ravel(), np.asarray(uy).ravel(), self.order,
-            lambda v, axis: _cell(v, origin[axis], scale, self.cells),
+            lambda v, axis: _cell(_units(v, steps[axis], shifts[axis]), origin[axis], scale, self.cells),
         )
 
     def to_dict(self) -> dict:
@@ -180,6 +188,21 @@ class SiteGrid:
     @classmethod
     def from_dict(cls, d: dict) -> "SiteGrid":
         return cls(float(d["x0"]), float(d["y0"]), float(d["size"]), int(d.get("order", 16)))
+
+
+def _units(v: np.ndarray, step: int, shift: int) -> np.ndarray:
+    """v * step + shift as float64, as the int64 result converted: float64 arithmetic is exact on
+    integers below 2^53, so it is used where every result and product stays below that."""
+    if step == 1 and shift == 0:
+        return v
+    if abs(step) * (1 << 32) + abs(shift) < 1 << 53:  # |v| < 2^32: int32 or uint32 source integers
+        u = v.astype(np.float64)
+        if step != 1:
+            u *= step
+        if shift:
+            u += shift
+        return u
+    return v.astype(np.int64) * step + shift
 
 
 def _cell(v: np.ndarray, origin: float, scale: float, cells: int) -> np.ndarray:

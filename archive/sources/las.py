@@ -218,18 +218,18 @@ class LasCodec:
             self._plan.append(("field" if plain else "laspy", name, ()))
         self.schema = self.decode(np.zeros(0, self.dtype)).schema
 
-    def _axis_types(self) -> tuple[pa.DataType, pa.DataType]:
-        return self.axes["x"].type, self.axes["y"].type
-
     def keys(self, records: np.ndarray, grid) -> np.ndarray:
+        ex, ey = self.axes["x"], self.axes["y"]
+        if ex.kind == ey.kind == "decimal" and ex.places == ey.places:  # the stored units, made in cache
+            (sx, hx), (sy, hy) = ex.las_units, ey.las_units
+            return grid.keys_of_units(records["X"], records["Y"], ex.places, (sx, sy), (hx, hy))
         values = []
-        for axis, raw in (("x", "X"), ("y", "Y")):
-            enc = self.axes[axis]
+        for enc, raw in ((ex, "X"), (ey, "Y")):
             if enc.kind == "float":
                 values.append(records[raw].astype(np.float64) * enc.scale + enc.offset)  # ASPRS LAS 1.4
             else:
                 values.append(enc.units(records[raw]))
-        return keys_of_axes(grid, *values, *self._axis_types())
+        return keys_of_axes(grid, *values, ex.type, ey.type)
 
     def decode(self, records: np.ndarray) -> pa.Table:
         columns: dict[str, pa.Array] = {}
