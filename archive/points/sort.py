@@ -49,9 +49,6 @@ class Part:
     def __len__(self) -> int:
         return len(self.keys)
 
-    def take(self, idx: np.ndarray) -> "Part":
-        return Part(self.keys[idx], self.records[idx], None if self.rows is None else self.rows[idx])
-
 
 class _MemoryStore:
     """Chunks kept as they arrived, while they fit the budget: one bucket."""
@@ -255,25 +252,41 @@ def _straddling_groups(rel: np.ndarray, shift: int, before: np.ndarray, straddle
     return group
 
 
-def _gather(parts: list[Part], starts: np.ndarray, idx: np.ndarray) -> Part:
-    """Rows at global positions `idx` (any order) of the concatenation of `parts`."""
-    if len(parts) == 1:
-        return parts[0].take(idx)
-    which = np.searchsorted(starts[1:-1], idx, side="right")  # part of each row
-    picks = [(p, sel, idx[sel] - s) for k, (p, s) in enumerate(zip(parts, starts))
-             if (sel := np.flatnonzero(which == k)).size]
+def _gather(parts: list[Part], starts: np.ndarray, idx: np.ndarray, records_only: bool = False) -> Part:
+    """Rows at global positions `idx` (any order) of the concatenation of `parts` (without keys
+    and arrival indices when `records_only`)."""
+    pieces = _pieces(parts, starts, idx)
 
     def pick(get) -> np.ndarray:
-        first = get(picks[0][0])
-        out = np.empty(len(idx), dtype=first.dtype)
-        for p, sel, local in picks:
-            out[sel] = get(p)[local]
+        out = np.empty(len(idx), dtype=get(parts[0]).dtype)
+        for p, where, local in pieces:
+            if isinstance(where, slice):
+                np.take(get(p), local, out=out[where], mode="clip")  # positions are valid: no checks
+            else:
+                out[where] = get(p)[local]
         return out
 
-    return Part(
-        pick(lambda p: p.keys), pick(lambda p: p.records),
-        None if any(p.rows is None for p in parts) else pick(lambda p: p.rows),
-    )
+    records = pick(lambda p: p.records)
+    if records_only:
+        return Part(np.empty(0, parts[0].keys.dtype), records)
+    return Part(pick(lambda p: p.keys), records, None if any(p.rows is None for p in parts) else pick(lambda p: p.rows))
+
+
+def _pieces(parts: list[Part], starts: np.ndarray, idx: np.ndarray) -> list[tuple[Part, slice | np.ndarray, np.ndarray]]:
+    """(part, where its rows go in the output, their positions in the part) for the rows `idx`.
+
+    A row group in arrival order runs through the parts in order, so its rows of one part are one
+    slice of the output; positions that switch parts more often (key order) are split by masks.
+    """
+    if not len(idx):
+        return []
+    which = np.searchsorted(starts[1:-1], idx, side="right")  # part of each row
+    cuts = np.flatnonzero(which[1:] != which[:-1]) + 1
+    if len(cuts) < 4 * len(parts) + 16:
+        runs = zip([0, *cuts.tolist()], [*cuts.tolist(), len(idx)])
+        return [(parts[which[a]], slice(a, b), idx[a:b] - starts[which[a]]) for a, b in runs]
+    return [(p, sel, idx[sel] - s) for k, (p, s) in enumerate(zip(parts, starts))
+            if (sel := np.flatnonzero(which == k)).size]
 
 
 def _group_order(parts: list[Part], size: int, scan_order: bool) -> np.ndarray:
@@ -325,7 +338,7 @@ def _emit_groups(
         starts = np.cumsum([0] + [len(p) for p in parts])
         full = len(order) // size * size
         for start in range(0, full, per):
-            yield codec.decode(_gather(parts, starts, order[start : min(full, start + per)]).records.view(codec.dtype))
+            yield codec.decode(_gather(parts, starts, order[start : min(full, start + per)], True).records.view(codec.dtype))
         if full < len(order):
             carry = _gather(parts, starts, order[full:])
         parts = order = None  # type: ignore[assignment]  # free this bucket before the next is read
