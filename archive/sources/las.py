@@ -20,6 +20,9 @@ VLR_HEADER = 54  # ASPRS LAS: reserved (2), user id (16), record id (2), length 
 EVLR_HEADER = 60  # ASPRS LAS 1.4: as a VLR header but with an 8-byte length
 COORDINATE_LIMIT = 1e15  # metres (or feet, or millimetres): no real frame reaches this
 WAVEFORM_FORMATS = (4, 5, 9, 10)  # point formats with a wave packet descriptor (ASPRS LAS 1.3/1.4)
+# measure()'s reused read buffer: 512 KiB-4 MiB cost alike (benchmarks/survey_inspect.py), and it
+# must exceed the survey's READ_BUFFER so a read goes straight to the file, not through a copy
+MEASURE_BYTES = 2 << 20
 
 
 def _laspy():
@@ -118,13 +121,24 @@ class LasReader:
             yield records
 
     def measure(self, chunk_size: int = 4_000_000) -> tuple[float, ...] | None:
-        """Count, bounds and time range of the readable points, straight from the raw records."""
+        """Count, bounds and time range of the readable points, straight from the raw records.
+
+        Uncompressed points are read through one reused buffer of about ``MEASURE_BYTES`` (no
+        fresh pages per chunk, and the reductions run on memory still in cache); LAZ is
+        decompressed by laspy in chunks of ``chunk_size``.
+        """
         lows, highs = np.full(3, np.iinfo(np.int64).max), np.full(3, np.iinfo(np.int64).min)
-        for raw in self._records(chunk_size, salvage=True):
+        buffer = None
+        if self.header.format == "las":
+            buffer = np.empty(max(1, MEASURE_BYTES // self.codec.dtype.itemsize), self.codec.dtype)
+            chunk_size = len(buffer)
+        timed = "gps_time" in self.codec.dtype.names
+        for raw in self._records(chunk_size, salvage=True, into=buffer):
             for i, name in enumerate(("X", "Y", "Z")):
-                lows[i] = min(lows[i], int(raw[name].min()))
-                highs[i] = max(highs[i], int(raw[name].max()))
-            if "gps_time" in raw.dtype.names:
+                values = raw[name]
+                lows[i] = min(lows[i], int(values.min()))
+                highs[i] = max(highs[i], int(values.max()))
+            if timed:
                 self.tally.note_times(raw["gps_time"])
         if self.tally.points == 0:
             return None
@@ -133,10 +147,12 @@ class LasReader:
         high = [v * e.scale + e.offset for e, v in zip(axes, highs)]
         return (*low, *high)
 
-    def _records(self, chunk_size: int, salvage: bool) -> Iterator[np.ndarray]:
+    def _records(self, chunk_size: int, salvage: bool, into: np.ndarray | None = None) -> Iterator[np.ndarray]:
         """The readable points' records (structured arrays of ``codec.dtype``); damage raises
         unless ``salvage``. Uncompressed points are read straight into the array (laspy's reader
-        costs 3x more CPU on the same bytes); LAZ is decompressed by laspy."""
+        costs 3x more CPU on the same bytes), a fresh one per chunk, or views of ``into`` (at
+        least ``chunk_size`` records) that the next chunk overwrites; LAZ is decompressed by laspy
+        and ignores ``into``."""
         header = self.header
         if header.problems and not salvage:
             raise DamagedSource(f"{self.relpath}: {'; '.join(header.problems)}; use --salvage to keep the readable points")
@@ -146,7 +162,7 @@ class LasReader:
             fh = stack.enter_context(self._opener())
             if header.format == "las":
                 fh.seek(self._offset)
-                read = lambda n: _read_records(fh, n, self.codec.dtype)  # noqa: E731
+                read = lambda n: _read_records(fh, n, self.codec.dtype, into)  # noqa: E731
             else:
                 reader = stack.enter_context(_laspy().open(fh))
                 read = lambda n: reader.read_points(n).array  # noqa: E731
@@ -172,10 +188,10 @@ class LasReader:
                 yield records
 
 
-def _read_records(fh, n: int, dtype: np.dtype) -> np.ndarray:
+def _read_records(fh, n: int, dtype: np.dtype, into: np.ndarray | None = None) -> np.ndarray:
     """Up to ``n`` whole point records from ``fh`` (ASPRS LAS: fixed-size records, little-endian),
-    fewer where the file ends."""
-    out = np.empty(n, dtype)
+    fewer where the file ends; in a fresh array, or in the first ``n`` records of ``into``."""
+    out = np.empty(n, dtype) if into is None else into[:n]
     view = memoryview(out.view(np.uint8))
     got = 0
     while got < view.nbytes:

@@ -1,0 +1,137 @@
+"""The survey's deep inspection (one pass over the points, hashed on the way) gives the count,
+bounds, time range and checksum an independent reader gives, whatever the chunking."""
+
+from __future__ import annotations
+
+import hashlib
+from pathlib import Path
+
+import fsspec
+import laspy
+import laspy.vlrs.vlrlist
+import numpy as np
+import pytest
+
+import archive.sources.las as las_module
+from archive.sitefile import SiteFile
+from archive.sources import open_points
+from archive.survey import inspect_file
+
+N = 250_003  # 7.5 MB of 30-byte records: four reads of the default 2 MiB buffer, the last one partial
+SMALL_BUFFER = 64 << 10  # 2184 records: 115 reads, each below the survey's 256 KiB read buffer
+
+
+KEPT = 180_001  # whole records left in the truncated file
+# where each field's extremes sit: the first and last record, the first record of a second read
+# (2184 records in SMALL_BUFFER, 69905 in the default), the last of a first read, the last kept
+EXTREMES = {
+    "X": (0, N - 1),
+    "Y": (2184, 69_905),
+    "Z": (KEPT - 1, 2183),
+    "gps_time": (69_905, KEPT - 1),
+}
+
+
+def _write(path: Path, n: int, *, evlr: bool, compressed: bool = False) -> None:
+    """Random points with every field's extremes at the places a chunked reader gets wrong."""
+    header = laspy.LasHeader(point_format=6, version="1.4")
+    header.scales = np.array([0.001, 0.001, 0.01])
+    header.offsets = np.array([500000.0, 7650000.0, -20.0])
+    header.global_encoding.gps_time_type = laspy.header.GpsTimeType.STANDARD
+    rng = np.random.default_rng(11)
+    las = laspy.LasData(header)
+    las.X = rng.integers(-10**6, 10**6, n)
+    las.Y = rng.integers(-10**6, 10**6, n)
+    las.Z = rng.integers(-10**4, 10**4, n)
+    las.gps_time = 1.4e9 + rng.random(n) * 3600.0
+    limits = {"X": (-2**31, 2**31 - 1), "Y": (-(10**9), 10**9), "Z": (-5 * 10**5, 7 * 10**5), "gps_time": (1.3e9, 1.5e9)}
+    for name, (low_at, high_at) in EXTREMES.items():
+        values = np.array(las[name])
+        values[low_at], values[high_at] = limits[name]
+        if name == "gps_time":
+            values[0] = np.nan  # skipped, as Arrow's min_max skips it
+        las[name] = values
+    if evlr:  # bytes after the points: the checksum must cover them too
+        las.evlrs = laspy.vlrs.vlrlist.VLRList([laspy.VLR("scanshelf-test", 7, "after the points", b"e" * 5_000)])
+    las.write(str(path), do_compress=compressed)
+
+
+def _inspect(path: Path):
+    fs = fsspec.filesystem("file")
+    relpath = f"north/{path.name}"
+    report = inspect_file(fs, str(path), relpath, path.stat().st_size, SiteFile(crs="EPSG:32633"))
+    reader = open_points(fs, str(path), relpath, path.stat().st_size, path.read_bytes()[:4096], SiteFile())
+    bounds = reader.measure()
+    return report, reader, bounds
+
+
+def _expect(report, reader, bounds, points: laspy.LasData, data: bytes) -> None:
+    # reference: hashlib over the file's bytes, read plainly
+    assert report.sha256 == hashlib.sha256(data).hexdigest()
+    # reference: laspy 2.x's scaled coordinates of the points themselves (not the header's bounds)
+    expected = tuple(float(v) for v in (points.x.min(), points.y.min(), points.z.min(),
+                                        points.x.max(), points.y.max(), points.z.max()))
+    assert report.point_count == reader.tally.points == len(points.x)
+    assert report.bounds == pytest.approx(expected, rel=1e-15, abs=0)
+    assert bounds == pytest.approx(expected, rel=1e-15, abs=0)
+    # reference: numpy nanmin/nanmax over laspy's gps_time
+    times = np.asarray(points.gps_time)
+    assert (reader.tally.min_time, reader.tally.max_time) == (np.nanmin(times), np.nanmax(times))
+
+
+@pytest.mark.parametrize("buffer_bytes", [las_module.MEASURE_BYTES, SMALL_BUFFER])
+def test_inspection_equals_laspy_and_sha256(tmp_path, monkeypatch, buffer_bytes) -> None:
+    monkeypatch.setattr(las_module, "MEASURE_BYTES", buffer_bytes)
+    path = tmp_path / "north" / "north_20260901_060000.las"
+    path.parent.mkdir()
+    _write(path, N, evlr=True)
+    assert N % (buffer_bytes // 30) != 0 and N > 3 * (buffer_bytes // 30)  # several reads, the last partial
+    report, reader, bounds = _inspect(path)
+    assert report.status == "ok", report.problems
+    _expect(report, reader, bounds, laspy.read(str(path)), path.read_bytes())
+
+
+def test_compressed_inspection_equals_laspy_and_sha256(tmp_path) -> None:
+    path = tmp_path / "north" / "north_20260901_060000.laz"
+    path.parent.mkdir()
+    _write(path, N, evlr=False, compressed=True)
+    report, reader, bounds = _inspect(path)
+    assert report.status == "ok", report.problems
+    _expect(report, reader, bounds, laspy.read(str(path)), path.read_bytes())
+
+
+@pytest.mark.parametrize("buffer_bytes", [las_module.MEASURE_BYTES, SMALL_BUFFER])
+def test_truncated_inspection_salvages_the_whole_records(tmp_path, monkeypatch, buffer_bytes) -> None:
+    monkeypatch.setattr(las_module, "MEASURE_BYTES", buffer_bytes)
+    whole = tmp_path / "whole.las"
+    _write(whole, N, evlr=False)
+    original = laspy.read(str(whole))
+    data = whole.read_bytes()
+    offset, size = original.header.offset_to_point_data, original.header.point_format.size
+    kept = KEPT  # whole records, then half a record
+    cut = data[: offset + kept * size + size // 2]
+    path = tmp_path / "north" / "north_20260901_060000.las"
+    path.parent.mkdir()
+    path.write_bytes(cut)
+    report, reader, bounds = _inspect(path)
+    assert report.status == "damaged"
+    # reference: ASPRS LAS 1.4 layout, fixed-size records from offset_to_point_data
+    assert (len(cut) - offset) // size == kept
+    assert report.problems == [f"header declares {N} points but the file holds {kept} (truncated, or a header count too large)"]
+    # the kept points' references come from laspy's read of the whole file, first `kept` points
+    _expect(report, reader, bounds, original[:kept], cut)
+
+
+def test_conversion_chunks_stay_valid_after_a_measure(tmp_path) -> None:
+    """The sort holds every chunk ``rows()`` gives; only ``measure`` may reuse its buffer."""
+    path = tmp_path / "north" / "north_20260901_060000.las"
+    path.parent.mkdir()
+    _write(path, N, evlr=False)
+    _, reader, _ = _inspect(path)
+    held = list(reader.rows(chunk_size=70_000, salvage=True).chunks)
+    assert [len(c) for c in held] == [70_000, 70_000, 70_000, 40_003]
+    assert not any(np.shares_memory(a, b) for i, a in enumerate(held) for b in held[i + 1:])
+    # reference: laspy 2.x's integer records of the same file
+    reference = laspy.read(str(path))
+    for name in ("X", "Y", "Z", "gps_time"):
+        np.testing.assert_array_equal(np.concatenate([c[name] for c in held]), np.asarray(reference.points.array[name]))
