@@ -11,7 +11,7 @@ import numpy as np
 import pyarrow as pa
 
 from archive.points.coords import AxisEncoding, LossyEncoding
-from archive.points.rows import Rows, keys_of_axes, numeric_array
+from archive.points.rows import Rows, held_records, keys_of_axes, numeric_array
 from archive.sources.base import DamagedSource, ReadTally, SourceError, SourceHeader
 
 LAS_SIGNATURE = b"LASF"
@@ -191,7 +191,7 @@ class LasReader:
 def _read_records(fh, n: int, dtype: np.dtype, into: np.ndarray | None = None) -> np.ndarray:
     """Up to ``n`` whole point records from ``fh`` (ASPRS LAS: fixed-size records, little-endian),
     fewer where the file ends; in a fresh array, or in the first ``n`` records of ``into``."""
-    out = np.empty(n, dtype) if into is None else into[:n]
+    out = held_records(n, dtype) if into is None else into[:n]
     view = memoryview(out.view(np.uint8))
     got = 0
     while got < view.nbytes:
