@@ -115,6 +115,25 @@ def test_duckdb_sees_real_coordinates_for_odd_scales(tmp_path):
     assert (lo, hi) == (float(las.x.min()), float(las.x.max()))
 
 
+def test_las_columns_are_required(tmp_path):
+    """Every LAS point has every field, so each column is REQUIRED (no definition levels)."""
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    las = _las(src / "st/scan_20160501_101500.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0),
+               gps=1.146e9 - 1e9, n=3_000)
+    migrate(str(src), str(shelf), previews=False)
+    path = next((shelf / "points").rglob("*.parquet"))
+    con = duckdb.connect()
+    try:
+        # reference: DuckDB's parquet_schema(), the repetition type of every leaf column
+        kinds = {row[0] for row in con.sql(
+            f"select repetition_type from parquet_schema('{path}') where num_children is null").fetchall()}
+        total = con.sql(f"select sum(intensity)::BIGINT from read_parquet('{path}')").fetchall()[0][0]
+    finally:
+        con.close()
+    assert kinds == {"REQUIRED"}
+    assert total == int(las.intensity.astype(np.int64).sum())  # reference: laspy
+
+
 ODD = 1.0000000000000002e-09  # not a short decimal: a float axis
 
 
