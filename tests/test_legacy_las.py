@@ -16,6 +16,7 @@ import pytest
 
 import archive
 from archive.migrate import migrate
+from archive.query.export import extract
 from archive.points.coords import AxisEncoding
 
 CRS = "EPSG:32633"
@@ -132,6 +133,24 @@ def test_las_columns_are_required(tmp_path):
         con.close()
     assert kinds == {"REQUIRED"}
     assert total == int(las.intensity.astype(np.int64).sum())  # reference: laspy
+
+
+def test_scans_of_different_point_formats_read_as_one_table(tmp_path):
+    """A column REQUIRED in one scan (format 6 'overlap') and absent from another (format 1) reads
+    as nulls for the other scan's points, in read_points and in extract."""
+    src, shelf = tmp_path / "src", tmp_path / "shelf"
+    six = _las(src / "st/scan_20160501_101500.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0),
+               gps=1.146e9 - 1e9, n=3_000)
+    one = _las(src / "st/scan_20160502_101500.las", scales=(0.001,) * 3, offsets=(500_000.0, 7_650_000.0, 0.0),
+               gps=1.146e9 - 1e9 + 86400, n=2_000, seed=1, point_format=1, version="1.2")
+    migrate(str(src), str(shelf), previews=False)
+    got = archive.open_shelf(str(shelf)).find().read_points()
+    # reference: laspy's point counts of the two files; only format 6 has an overlap bit
+    assert got.num_rows == len(six.points) + len(one.points)
+    assert got["overlap"].null_count == len(one.points)
+    cut = extract(str(shelf), str(tmp_path / "all.parquet"), bbox_fraction=1.0)
+    assert cut.points == got.num_rows
+    assert pq.read_table(tmp_path / "all.parquet", columns=["overlap"])["overlap"].null_count == len(one.points)
 
 
 ODD = 1.0000000000000002e-09  # not a short decimal: a float axis

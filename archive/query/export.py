@@ -25,7 +25,7 @@ from fsspec.implementations.local import LocalFileSystem
 
 from archive.points.coords import AxisEncoding, units_of
 from archive.query.iostats import IOStats
-from archive.query.points import AXES, read_scan
+from archive.query.points import AXES, join_scans, read_scan
 from archive.query.shelf import Scan, TimeLike, open_shelf
 from archive.storage import filesystem
 
@@ -87,7 +87,7 @@ def extract(
             progress(scan)
     if not tables:
         raise ValueError(f"{shelf.url}: no points inside {tuple(bbox)}; nothing written to {out}")
-    joined = pa.concat_tables([t.replace_schema_metadata(None) for t in tables], promote_options="permissive")
+    joined = join_scans(tables)
     meta = {"source": shelf.url, "bbox": list(scans.bbox), "scans": [s.id for s in scans]}
     if shelf.crs is not None:
         meta["crs"] = shelf.crs.to_json_dict()

@@ -158,6 +158,15 @@ def _floats(table: pa.Table, axes: dict[str, AxisEncoding]) -> pa.Table:
     return table
 
 
+def join_scans(tables: list[pa.Table]) -> pa.Table:
+    """Points of several scans as one table: columns a scan lacks become nulls, types widen where
+    scans differ, and per-file metadata (axes, CRS), which describes one scan, is dropped. Fields
+    become nullable first: a column that is REQUIRED in one file (LAS) may be missing from another.
+    """
+    loose = [pa.Table.from_arrays(t.columns, schema=pa.schema([f.with_nullable(True) for f in t.schema])) for t in tables]
+    return pa.concat_tables(loose, promote_options="permissive")
+
+
 def read_scan(
     fs: AbstractFileSystem,
     scan: ScanFile,

@@ -25,7 +25,7 @@ import pyarrow.parquet as pq
 from archive import layout
 from archive.hrefs import redact, safe_href
 from archive.query.iostats import CountingFileSystem, IOStats
-from archive.query.points import BBox, ScanFile, read_scan
+from archive.query.points import BBox, ScanFile, join_scans, read_scan
 from archive.storage import filesystem
 
 TimeLike = datetime | date | str | np.datetime64 | pd.Timestamp | None
@@ -178,10 +178,7 @@ class Scans:
             tables = list(pool.map(one, self._scans))
         if not tables:
             return pa.table({"scan_id": pa.array([], pa.string())})
-        # per-file metadata (axes, CRS) describes one scan, not the union
-        joined = pa.concat_tables(
-            [t.replace_schema_metadata(None) for t in tables], promote_options="permissive"
-        )
+        joined = join_scans(tables)
         return joined.select([c for c in joined.column_names if c != "scan_id"] + ["scan_id"])
 
     def to_dask(
