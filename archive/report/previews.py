@@ -88,17 +88,26 @@ def _block_mean(z: np.ndarray, extent: tuple[float, float, float, float], cell: 
     f = -(-max(z.shape) // MAX_PIXELS)
     if f <= 1:
         return z, extent, cell
-    ny, nx = -(-z.shape[0] // f), -(-z.shape[1] // f)
+    h, w = z.shape
+    ny, nx = -(-h // f), -(-w // f)
     finite = np.isfinite(z)
-    values = np.where(finite, z, 0).astype(np.float32, copy=False)
-    if values.shape != (ny * f, nx * f):
-        pad = ((0, ny * f - z.shape[0]), (0, nx * f - z.shape[1]))
-        values, finite = np.pad(values, pad), np.pad(finite, pad)
-    # sums over one axis at a time: several times faster than nanmean over a 4-d view
-    count = finite.reshape(ny, f, nx * f).sum(axis=1, dtype=np.uint16).reshape(ny, nx, f).sum(axis=2)
-    sums = values.reshape(ny, f, nx * f).sum(axis=1).reshape(ny, nx, f).sum(axis=2, dtype=np.float64)
+    values = np.zeros((ny * f, nx * f), np.float32)  # padded to whole blocks with empty cells
+    np.copyto(values[:h, :w], z, where=finite, casting="same_kind")
+    held = np.zeros((ny * f, nx * f), np.uint8)
+    held[:h, :w] = finite
+    # a block's rows, then its columns, added slice by slice: the row sums are float32 in row
+    # order (as a sum over that axis adds them), the column sums exact in float64; slices run
+    # several times faster than sums over a short axis of a reshaped view
+    sums, count = values[0::f].copy(), held[0::f].astype(np.uint16)
+    for k in range(1, f):
+        sums += values[k::f]
+        count += held[k::f]
+    block_sums, block_count = sums[:, 0::f].astype(np.float64), count[:, 0::f].copy()
+    for k in range(1, f):
+        block_sums += sums[:, k::f]
+        block_count += count[:, k::f]
     with np.errstate(invalid="ignore", divide="ignore"):
-        z = np.where(count > 0, sums if total else sums / count, np.nan)
+        z = np.where(block_count > 0, block_sums if total else block_sums / block_count, np.nan)
     return z, (extent[0], extent[0] + nx * f * cell, extent[3] - ny * f * cell, extent[3]), cell * f
 
 
