@@ -19,7 +19,7 @@ import numpy as np
 from PIL import Image, ImageDraw
 
 from archive.report.health import Gap
-from archive.report.previews import _array_extent, _block_mean, change_png, crop_to_data, preview_png
+from archive.report.previews import _array_extent, _block_mean, _double, change_png, crop_to_data, preview_png
 from archive.report.raster import Scale, colorize, font, map_png
 
 if TYPE_CHECKING:
@@ -145,10 +145,11 @@ def density_map(point_count: xr.DataArray | GridMap, title: str, crop: bool = Tr
     into one end of the palette. A grid too big to show cell by cell shows the points per m² of
     each block of cells, empty cells included."""
     counts, extent, cell = _array_extent(point_count)
-    counts = np.where(counts > 0, counts, np.nan)
     if crop:
-        counts, extent = crop_to_data(counts, extent, cell)
+        counts, extent = crop_to_data(counts, extent, cell, held=counts > 0)
+    counts = np.where(counts > 0, counts, np.nan)
     counts, extent, block = _block_mean(counts, extent, cell, total=True)  # a big grid: points per block
+    counts = _double(counts)
     density = counts / (block * block)
     finite = density[np.isfinite(density)]
     if not finite.size:

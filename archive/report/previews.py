@@ -67,16 +67,27 @@ def _elevation_of(data, spec: GridSpec | None) -> tuple[np.ndarray, tuple[float,
 
 
 def _array_extent(da: xr.DataArray | GridMap) -> tuple[np.ndarray, tuple[float, float, float, float], float]:
+    """(values north-up, extent (l, r, b, t), cell). float32 values stay float32 (a cube stores
+    them so; block means add them in float32 anyway), other types become float64: pictures
+    small enough to show cell by cell are drawn in double precision (:func:`_double`)."""
     if isinstance(da, GridMap):
-        x, y, values = da.x, da.y, np.asarray(da.values, dtype=np.float64)
+        x, y, values = da.x, da.y, np.asarray(da.values)
     else:
         x, y = da["x"].values, da["y"].values
-        values = np.asarray(da.transpose("y", "x").values, dtype=np.float64)
+        values = np.asarray(da.transpose("y", "x").values)
+    if values.dtype != np.float32:
+        values = values.astype(np.float64, copy=False)
     cell = float(abs(x[1] - x[0])) if x.size > 1 else 1.0
     if y.size > 1 and y[1] > y[0]:  # south-up input: flip to north-up
         values, y = values[::-1], y[::-1]
     half = cell / 2
     return values, (x[0] - half, x[-1] + half, y[-1] - half, y[0] + half), cell
+
+
+def _double(z: np.ndarray) -> np.ndarray:
+    """A map from a cube in double precision, once cropped and block-averaged: cheaper than
+    converting the whole cube, and the same values."""
+    return z.astype(np.float64, copy=False)
 
 
 MAX_PIXELS = 640  # a preview is a quick look: larger grids are block-averaged to at most this a side
@@ -111,9 +122,10 @@ def _block_mean(z: np.ndarray, extent: tuple[float, float, float, float], cell: 
     return z, (extent[0], extent[0] + nx * f * cell, extent[3] - ny * f * cell, extent[3]), cell * f
 
 
-def crop_to_data(z: np.ndarray, extent: tuple[float, float, float, float], cell: float):
-    """The part of ``z`` whose rows and columns hold data (finite values), and its extent."""
-    held = np.isfinite(z)
+def crop_to_data(z: np.ndarray, extent: tuple[float, float, float, float], cell: float,
+                 held: np.ndarray | None = None):
+    """The part of ``z`` whose rows and columns hold data (finite values, or ``held``), and its extent."""
+    held = np.isfinite(z) if held is None else held
     rows, cols = np.flatnonzero(held.any(axis=1)), np.flatnonzero(held.any(axis=0))
     if not rows.size:
         return z, extent
@@ -132,6 +144,8 @@ def preview_png(data, spec: GridSpec | None = None, title: str | None = None, un
     if crop:
         z, extent = crop_to_data(z, extent, cell)
     z, extent, cell = _block_mean(z, extent, cell)
+    if not isinstance(data, EpochGrid):
+        z = _double(z)
     valid = np.isfinite(z)
     if not valid.any():
         return map_png(np.zeros((*z.shape, 4), np.uint8), extent, None, title=title, units=units,
@@ -163,6 +177,7 @@ def change_png(change, title: str | None = None, crop: bool = False) -> bytes:
     if crop:
         d, extent = crop_to_data(d, extent, cell)
     d, extent, cell = _block_mean(d, extent, cell)
+    d = _double(d)
     finite = d[np.isfinite(d)]
     limit = float(np.percentile(np.abs(finite), 98)) if finite.size else 1.0
     limit = limit if limit > 0 else 1.0
