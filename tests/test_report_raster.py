@@ -118,3 +118,42 @@ def test_coverage_chart_marks_partial_scans_and_shades_gaps():
     middle = img[200, int(first + (last - first) * 0.6)]
     quiet = img[200, int(first + (last - first) * 0.06)]
     assert np.abs(middle - gap_colour).sum() < 12 and (quiet > 250).all()
+
+
+def test_png_bytes_decode_to_the_pixels_drawn():
+    from archive.report.raster import png_bytes
+
+    rng = np.random.default_rng(23)
+    rgb = rng.integers(0, 256, size=(37, 53, 3), dtype=np.uint8)
+    rgb[10:20] = (12, 200, 99)  # a flat run, as maps have
+    rgba = np.dstack([rgb, np.full(rgb.shape[:2], 255, np.uint8)])
+    for image in (Image.fromarray(rgb), Image.fromarray(rgba, "RGBA")):
+        png = png_bytes(image)
+        with Image.open(io.BytesIO(png)) as im:  # reference: Pillow's PNG decoder
+            im.load()
+            assert (im.format, im.mode, im.size) == ("PNG", "RGB", (53, 37))
+            np.testing.assert_array_equal(np.asarray(im), rgb)
+
+
+@pytest.mark.parametrize("total", [False, True])
+def test_block_means_of_a_big_grid_equal_scipy(total):
+    from scipy.stats import binned_statistic_2d
+
+    from archive.report.previews import _block_mean
+
+    rng = np.random.default_rng(29)
+    z = rng.normal(100, 20, size=(700, 1301)).astype(np.float32)
+    z[rng.random(z.shape) < 0.6] = np.nan
+    z[:30, :40] = np.nan  # whole blocks without data stay empty
+    got, extent, cell = _block_mean(z, (0.0, 1301.0, 0.0, 700.0), 1.0, total=total)
+    f = 3  # 1301 cells wide: blocks of 3 × 3 keep the picture within 640 pixels
+    assert got.shape == (234, 434) and cell == f and extent == (0.0, 1302.0, -2.0, 700.0)
+    rows, cols = np.nonzero(np.isfinite(z))
+    # reference: scipy.stats.binned_statistic_2d over the finite cells, blocks of f × f from the top left
+    want = binned_statistic_2d(rows + 0.5, cols + 0.5, z[rows, cols].astype(np.float64),
+                               "sum" if total else "mean", bins=[np.arange(0, 703, f), np.arange(0, 1303, f)])
+    counts = binned_statistic_2d(rows + 0.5, cols + 0.5, None, "count",
+                                 bins=[np.arange(0, 703, f), np.arange(0, 1303, f)]).statistic
+    expected = np.where(counts > 0, want.statistic, np.nan)
+    assert np.isnan(got[:10, :13]).all()
+    np.testing.assert_allclose(got, expected, rtol=2e-6)

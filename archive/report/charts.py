@@ -8,7 +8,6 @@ the coverage chart with matplotlib's date ticks and labels.
 
 from __future__ import annotations
 
-import io
 from collections.abc import Sequence
 from datetime import datetime
 from typing import TYPE_CHECKING
@@ -20,7 +19,7 @@ from PIL import Image, ImageDraw
 
 from archive.report.health import Gap
 from archive.report.previews import _array_extent, _block_mean, _double, change_png, crop_to_data, preview_png
-from archive.report.raster import Scale, colorize, font, map_png
+from archive.report.raster import Scale, colorize, font, map_png, png_bytes
 
 if TYPE_CHECKING:
     import xarray as xr
@@ -123,10 +122,7 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
         x -= 22 * SS
         d.rectangle((x, 15 * SS, x + 16 * SS, 23 * SS), fill=colour)
         x -= 14 * SS
-    img = img.resize((WIDTH, HEIGHT), Image.Resampling.LANCZOS)
-    buf = io.BytesIO()
-    img.save(buf, format="PNG", compress_level=1)
-    return buf.getvalue()
+    return png_bytes(img.resize((WIDTH, HEIGHT), Image.Resampling.LANCZOS))
 
 
 def elevation_map(elevation: xr.DataArray | GridMap, title: str, crop: bool = True) -> bytes:
