@@ -157,3 +157,18 @@ def test_block_means_of_a_big_grid_equal_scipy(total):
     expected = np.where(counts > 0, want.statistic, np.nan)
     assert np.isnan(got[:10, :13]).all()
     np.testing.assert_allclose(got, expected, rtol=2e-6)
+
+
+def test_hillshade_is_matplotlibs_lightsource():
+    from matplotlib.colors import LightSource
+
+    from archive.report.previews import hillshade
+
+    rng = np.random.default_rng(31)
+    y, x = np.mgrid[0:90, 0:140]
+    z = (40 * np.sin(x / 17.0) * np.cos(y / 11.0) + rng.normal(0, 0.5, x.shape)).astype(np.float32)
+    got = hillshade(z, 0.5)
+    # reference: matplotlib's LightSource, light from the north-west at 40 degrees
+    want = LightSource(azdeg=315, altdeg=40).hillshade(z, vert_exag=1, dx=0.5, dy=0.5)
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-12)
+    assert got.min() == 0 and got.max() == 1 and got[:, :70].std() > 0.1

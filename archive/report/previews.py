@@ -14,7 +14,6 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
-from matplotlib.colors import LightSource
 
 from archive.grids.binning import EpochGrid
 from archive.grids.spec import GridSpec
@@ -134,6 +133,25 @@ def crop_to_data(z: np.ndarray, extent: tuple[float, float, float, float], cell:
     return z, (left, left + z.shape[1] * cell, top - z.shape[0] * cell, top)
 
 
+def hillshade(z: np.ndarray, cell: float, azimuth: float = 315.0, altitude: float = 40.0) -> np.ndarray:
+    """Illumination (0 to 1, stretched to the full range) of a north-up surface lit from
+    ``azimuth`` (degrees from north; 315 is the north-west that map readers expect) at
+    ``altitude`` degrees: the steps of matplotlib's ``LightSource.hillshade``, with the product
+    of the unit normals and the light written out instead of its BLAS call, which cost as much
+    as all the rest and whose last bits vary with the machine's BLAS kernels."""
+    e_dy, e_dx = np.gradient(z, -cell, cell)  # rows run south
+    nx, ny = np.negative(e_dx, dtype=np.float64), np.negative(e_dy, dtype=np.float64)
+    length = np.sqrt(nx * nx + ny * ny + 1.0)
+    az, alt = np.radians(90 - azimuth), np.radians(altitude)
+    light = (np.cos(az) * np.cos(alt), np.sin(az) * np.cos(alt), np.sin(alt))
+    intensity = nx / length * light[0] + ny / length * light[1] + 1.0 / length * light[2]
+    low, high = intensity.min(), intensity.max()
+    if high - low > 1e-6:
+        intensity -= low
+        intensity /= high - low
+    return np.clip(intensity, 0, 1, out=intensity)
+
+
 def preview_png(data, spec: GridSpec | None = None, title: str | None = None, units: str = "m",
                 crop: bool = True) -> bytes:
     """Hillshaded elevation of one epoch (EpochGrid + spec, GridMap, Dataset or DataArray) as PNG bytes.
@@ -154,8 +172,8 @@ def preview_png(data, spec: GridSpec | None = None, title: str | None = None, un
     scale = Scale("cividis", lo, hi if hi > lo else lo + 1, label=f"elevation ({units})")
     filled = np.where(valid, z, np.nanmean(z))
     rgb = colorize(filled, scale)[..., :3] / 255.0
-    shaded = LightSource(azdeg=315, altdeg=40).shade_rgb(rgb, filled, blend_mode="soft", vert_exag=1,
-                                                         dx=cell, dy=cell)
+    light = hillshade(filled, cell)[..., np.newaxis]
+    shaded = 2 * light * rgb + (1 - 2 * light) * rgb**2  # soft-light blend ("pegtop"), as matplotlib's
     rgba = np.empty((*z.shape, 4), np.uint8)
     rgba[..., :3] = np.round(np.clip(shaded, 0, 1) * 255)
     rgba[..., 3] = np.where(valid, 255, 0)
