@@ -146,8 +146,8 @@ def density_map(point_count: xr.DataArray | GridMap, title: str, crop: bool = Tr
     counts, extent, cell = _array_extent(point_count)
     if crop:
         counts, extent = crop_to_data(counts, extent, cell, held=counts > 0)
-    counts = np.where(counts > 0, counts, np.nan)
-    counts, extent, block = _block_mean(counts, extent, cell, total=True)  # a big grid: points per block
+    # a big grid: points per block; empty cells and blocks NaN
+    counts, extent, block = _block_mean(counts, extent, cell, total=True, held=counts > 0)
     counts = _double(counts)
     density = counts / (block * block)
     finite = density[np.isfinite(density)]

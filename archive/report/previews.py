@@ -66,16 +66,14 @@ def _elevation_of(data, spec: GridSpec | None) -> tuple[np.ndarray, tuple[float,
 
 
 def _array_extent(da: xr.DataArray | GridMap) -> tuple[np.ndarray, tuple[float, float, float, float], float]:
-    """(values north-up, extent (l, r, b, t), cell). float32 values stay float32 (a cube stores
-    them so; block means add them in float32 anyway), other types become float64: pictures
+    """(values north-up, extent (l, r, b, t), cell). Values keep the type the cube stores
+    (float32 elevations, integer counts): block means add them in float32 anyway, and pictures
     small enough to show cell by cell are drawn in double precision (:func:`_double`)."""
     if isinstance(da, GridMap):
         x, y, values = da.x, da.y, np.asarray(da.values)
     else:
         x, y = da["x"].values, da["y"].values
         values = np.asarray(da.transpose("y", "x").values)
-    if values.dtype != np.float32:
-        values = values.astype(np.float64, copy=False)
     cell = float(abs(x[1] - x[0])) if x.size > 1 else 1.0
     if y.size > 1 and y[1] > y[0]:  # south-up input: flip to north-up
         values, y = values[::-1], y[::-1]
@@ -92,15 +90,17 @@ def _double(z: np.ndarray) -> np.ndarray:
 MAX_PIXELS = 640  # a preview is a quick look: larger grids are block-averaged to at most this a side
 
 
-def _block_mean(z: np.ndarray, extent: tuple[float, float, float, float], cell: float, total: bool = False):
-    """Average (or with ``total``, add up) blocks of cells, NaN ignored, so neither side exceeds
-    MAX_PIXELS; a block without data stays NaN. Single precision: these are display values."""
+def _block_mean(z: np.ndarray, extent: tuple[float, float, float, float], cell: float, total: bool = False,
+                held: np.ndarray | None = None):
+    """Average (or with ``total``, add up) blocks of cells, cells without data (NaN, or not
+    ``held``) ignored, so neither side exceeds MAX_PIXELS; a block or cell without data is NaN.
+    Single precision: these are display values."""
     f = -(-max(z.shape) // MAX_PIXELS)
     if f <= 1:
-        return z, extent, cell
+        return (z if held is None else np.where(held, z, np.nan)), extent, cell
     h, w = z.shape
     ny, nx = -(-h // f), -(-w // f)
-    finite = np.isfinite(z)
+    finite = np.isfinite(z) if held is None else held
     values = np.zeros((ny * f, nx * f), np.float32)  # padded to whole blocks with empty cells
     np.copyto(values[:h, :w], z, where=finite, casting="same_kind")
     held = np.zeros((ny * f, nx * f), np.uint8)
