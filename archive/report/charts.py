@@ -18,7 +18,7 @@ import numpy as np
 from PIL import Image, ImageDraw
 
 from archive.report.health import Gap
-from archive.report.previews import _array_extent, _block_mean, _double, change_png, crop_to_data, preview_png
+from archive.report.previews import _array_extent, _block_mean, _crop, _double, change_png, preview_png
 from archive.report.raster import Scale, colorize, font, map_png, png_bytes
 
 if TYPE_CHECKING:
@@ -144,10 +144,11 @@ def density_map(point_count: xr.DataArray | GridMap, title: str, crop: bool = Tr
     into one end of the palette. A grid too big to show cell by cell shows the points per m² of
     each block of cells, empty cells included."""
     counts, extent, cell = _array_extent(point_count)
+    held = counts > 0
     if crop:
-        counts, extent = crop_to_data(counts, extent, cell, held=counts > 0)
+        counts, held, extent = _crop(counts, held, extent, cell)
     # a big grid: points per block; empty cells and blocks NaN
-    counts, extent, block = _block_mean(counts, extent, cell, total=True, held=counts > 0)
+    counts, extent, block = _block_mean(counts, extent, cell, total=True, held=held)
     counts = _double(counts)
     density = counts / (block * block)
     finite = density[np.isfinite(density)]

@@ -121,16 +121,16 @@ def _block_mean(z: np.ndarray, extent: tuple[float, float, float, float], cell: 
     return z, (extent[0], extent[0] + nx * f * cell, extent[3] - ny * f * cell, extent[3]), cell * f
 
 
-def crop_to_data(z: np.ndarray, extent: tuple[float, float, float, float], cell: float,
-                 held: np.ndarray | None = None):
-    """The part of ``z`` whose rows and columns hold data (finite values, or ``held``), and its extent."""
-    held = np.isfinite(z) if held is None else held
+def _crop(z: np.ndarray, held: np.ndarray, extent: tuple[float, float, float, float], cell: float):
+    """(z, held, extent) cropped to the rows and columns with data: the mask comes along, so the
+    block means need not test the cells again."""
     rows, cols = np.flatnonzero(held.any(axis=1)), np.flatnonzero(held.any(axis=0))
     if not rows.size:
-        return z, extent
+        return z, held, extent
     left, top = extent[0] + cols[0] * cell, extent[3] - rows[0] * cell
-    z = z[rows[0] : rows[-1] + 1, cols[0] : cols[-1] + 1]
-    return z, (left, left + z.shape[1] * cell, top - z.shape[0] * cell, top)
+    window = slice(rows[0], rows[-1] + 1), slice(cols[0], cols[-1] + 1)
+    z = z[window]
+    return z, held[window], (left, left + z.shape[1] * cell, top - z.shape[0] * cell, top)
 
 
 def hillshade(z: np.ndarray, cell: float, azimuth: float = 315.0, altitude: float = 40.0) -> np.ndarray:
@@ -159,9 +159,10 @@ def preview_png(data, spec: GridSpec | None = None, title: str | None = None, un
     ``crop=False`` keeps the given extent (the health page crops all maps of a station alike).
     """
     z, extent, cell = _elevation_of(data, spec)
+    held = np.isfinite(z)
     if crop:
-        z, extent = crop_to_data(z, extent, cell)
-    z, extent, cell = _block_mean(z, extent, cell)
+        z, held, extent = _crop(z, held, extent, cell)
+    z, extent, cell = _block_mean(z, extent, cell, held=held)
     if not isinstance(data, EpochGrid):
         z = _double(z)
     valid = np.isfinite(z)
@@ -172,10 +173,18 @@ def preview_png(data, spec: GridSpec | None = None, title: str | None = None, un
     scale = Scale("cividis", lo, hi if hi > lo else lo + 1, label=f"elevation ({units})")
     filled = np.where(valid, z, np.nanmean(z))
     rgb = colorize(filled, scale)[..., :3] / 255.0
+    # soft-light blend ("pegtop", as matplotlib's): 2 L rgb + (1 - 2 L) rgb², in place
     light = hillshade(filled, cell)[..., np.newaxis]
-    shaded = 2 * light * rgb + (1 - 2 * light) * rgb**2  # soft-light blend ("pegtop"), as matplotlib's
+    light *= 2
+    shaded = light * rgb
+    np.subtract(1, light, out=light)
+    np.multiply(rgb, rgb, out=rgb)
+    rgb *= light
+    shaded += rgb
+    np.clip(shaded, 0, 1, out=shaded)
+    shaded *= 255
     rgba = np.empty((*z.shape, 4), np.uint8)
-    rgba[..., :3] = np.round(np.clip(shaded, 0, 1) * 255)
+    rgba[..., :3] = np.round(shaded, out=shaded)
     rgba[..., 3] = np.where(valid, 255, 0)
     return map_png(rgba, extent, scale, title=title, units=units)
 
@@ -192,9 +201,10 @@ def change_png(change, title: str | None = None, crop: bool = False) -> bytes:
     if title is None and hasattr(change, "scan0"):
         title = f"{change.scan1} − {change.scan0}"
     d, extent, cell = _array_extent(da)
+    held = np.isfinite(d)
     if crop:
-        d, extent = crop_to_data(d, extent, cell)
-    d, extent, cell = _block_mean(d, extent, cell)
+        d, held, extent = _crop(d, held, extent, cell)
+    d, extent, cell = _block_mean(d, extent, cell, held=held)
     d = _double(d)
     finite = d[np.isfinite(d)]
     limit = float(np.percentile(np.abs(finite), 98)) if finite.size else 1.0
