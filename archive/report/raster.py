@@ -150,7 +150,8 @@ def png_bytes(image: Image.Image) -> bytes:
     Pillow's encoder tries all five row filters on every row, which costs as much as the
     deflate itself; these pictures are flat colours, lines and text, where unfiltered rows
     compress as well or better. Measured on the maps of a 1.5M-point scan: half the time of
-    Pillow's ``compress_level=1`` (itself 2x faster than level 6) and 4 to 28 % fewer bytes.
+    Pillow's ``compress_level=1`` (itself 2x faster than level 6) and 4 to 28 % fewer bytes
+    (the coverage chart, mostly white: 6 % more).
     The layout is the PNG standard's (signature, IHDR, one IDAT, IEND; W3C PNG 3rd edition).
     """
     rgb = np.asarray(image.convert("RGB") if image.mode != "RGB" else image)
