@@ -172,3 +172,33 @@ def test_hillshade_is_matplotlibs_lightsource():
     want = LightSource(azdeg=315, altdeg=40).hillshade(z, vert_exag=1, dx=0.5, dy=0.5)
     np.testing.assert_allclose(got, want, rtol=0, atol=1e-12)
     assert got.min() == 0 and got.max() == 1 and got[:, :70].std() > 0.1
+
+
+def test_a_preview_shows_matplotlibs_shaded_colours_cell_by_cell():
+    from matplotlib.colors import LightSource
+
+    from archive.report.previews import GridMap, preview_png
+    from archive.report.raster import NO_DATA
+
+    rng = np.random.default_rng(37)
+    y, x = np.mgrid[0:60, 0:100]
+    z = (30 + 8 * np.sin(x / 9.0) + 5 * np.cos(y / 7.0) + rng.normal(0, 0.3, x.shape)).astype(np.float32)
+    z[:4, :] = np.nan  # a strip without points shows the no-data grey
+    z[20:25, 40:48] = np.nan
+    grid = GridMap(z, 600_000.5 + np.arange(100), 7_000_000.5 - np.arange(60))  # north-up, 1 m cells
+    img = _decode(preview_png(grid, title="t", crop=False))
+    # reference: matplotlib colours the percentile-stretched values (cividis, as its colormaps index
+    # bytes) and shades them with LightSource soft light; empty cells are filled with the mean first
+    valid = np.isfinite(z)
+    lo, hi = np.nanpercentile(z.astype(np.float64), [1, 99])
+    filled = np.where(valid, z.astype(np.float64), np.nanmean(z.astype(np.float64)))
+    rgb = matplotlib.colormaps["cividis"](Normalize(lo, hi)(filled), bytes=True)[..., :3] / 255.0
+    shaded = LightSource(azdeg=315, altdeg=40).shade_rgb(rgb, filled, blend_mode="soft", dx=1.0, dy=1.0)
+    want = np.round(np.clip(shaded, 0, 1) * 255).astype(int)
+    want[~valid] = NO_DATA
+    # 100 × 60 cells fill the 600-pixel-wide map: 6 × 6 pixels each, below a 34-pixel title band
+    centres = img[34 + 3 : 34 + 360 : 6, 12 + 3 : 12 + 600 : 6].astype(int)
+    assert centres.shape == want.shape
+    centres, want = centres[:54], want[:54]  # the scale bar covers the bottom rows
+    assert np.abs(centres - want).max() <= 1  # rounding of the shade's last bits, no more
+    assert (centres == want).all(axis=2).mean() > 0.999
