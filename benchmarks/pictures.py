@@ -98,10 +98,10 @@ def main() -> None:
     if args.save:
         Path(args.save).mkdir(parents=True, exist_ok=True)
     env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")])))
+    code = RUN.replace("SHELF", repr(str(shelf))).replace("SAVE", repr(args.save))
     runs = []
     for _ in range(args.repeat):
-        out = subprocess.run([sys.executable, "-c", RUN.replace("SHELF", repr(str(shelf))).replace("SAVE", repr(args.save))],
-                             capture_output=True, text=True, env=env)
+        out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
         if out.returncode:
             raise SystemExit(out.stderr[-3000:])
         runs.append(json.loads(out.stdout.strip().splitlines()[-1]))
