@@ -536,14 +536,14 @@ def _coarse_transform(spec: GridSpec):
 
 
 def _write_preview(task: ScanTask, spec: GridSpec, epoch: EpochGrid, scan: ScanId) -> str | None:
-    from archive.report.previews import render_preview
+    from archive.report.previews import preview_png
 
     relative = layout.preview_path(scan)
     final = Path(task.shelf) / relative
     final.parent.mkdir(parents=True, exist_ok=True)
     temp = final.with_name(f"{final.stem}.part-{uuid.uuid4().hex[:8]}.png")
     try:
-        render_preview(epoch, str(temp), spec=spec, title=task.scan_id)
+        temp.write_bytes(preview_png(epoch, spec, title=task.scan_id))  # local: no fsspec round trip
         os.replace(temp, final)
         crash_point("preview.renamed")
     finally:

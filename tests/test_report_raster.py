@@ -118,3 +118,87 @@ def test_coverage_chart_marks_partial_scans_and_shades_gaps():
     middle = img[200, int(first + (last - first) * 0.6)]
     quiet = img[200, int(first + (last - first) * 0.06)]
     assert np.abs(middle - gap_colour).sum() < 12 and (quiet > 250).all()
+
+
+def test_png_bytes_decode_to_the_pixels_drawn():
+    from archive.report.raster import png_bytes
+
+    rng = np.random.default_rng(23)
+    rgb = rng.integers(0, 256, size=(37, 53, 3), dtype=np.uint8)
+    rgb[10:20] = (12, 200, 99)  # a flat run, as maps have
+    rgba = np.dstack([rgb, np.full(rgb.shape[:2], 255, np.uint8)])
+    for image in (Image.fromarray(rgb), Image.fromarray(rgba, "RGBA")):
+        png = png_bytes(image)
+        with Image.open(io.BytesIO(png)) as im:  # reference: Pillow's PNG decoder
+            im.load()
+            assert (im.format, im.mode, im.size) == ("PNG", "RGB", (53, 37))
+            np.testing.assert_array_equal(np.asarray(im), rgb)
+
+
+@pytest.mark.parametrize("total", [False, True])
+def test_block_means_of_a_big_grid_equal_scipy(total):
+    from scipy.stats import binned_statistic_2d
+
+    from archive.report.previews import _block_mean
+
+    rng = np.random.default_rng(29)
+    z = rng.normal(100, 20, size=(700, 1301)).astype(np.float32)
+    z[rng.random(z.shape) < 0.6] = np.nan
+    z[:30, :40] = np.nan  # whole blocks without data stay empty
+    got, extent, cell = _block_mean(z, (0.0, 1301.0, 0.0, 700.0), 1.0, total=total)
+    f = 3  # 1301 cells wide: blocks of 3 × 3 keep the picture within 640 pixels
+    assert got.shape == (234, 434) and cell == f and extent == (0.0, 1302.0, -2.0, 700.0)
+    rows, cols = np.nonzero(np.isfinite(z))
+    # reference: scipy.stats.binned_statistic_2d over the finite cells, blocks of f × f from the top left
+    want = binned_statistic_2d(rows + 0.5, cols + 0.5, z[rows, cols].astype(np.float64),
+                               "sum" if total else "mean", bins=[np.arange(0, 703, f), np.arange(0, 1303, f)])
+    counts = binned_statistic_2d(rows + 0.5, cols + 0.5, None, "count",
+                                 bins=[np.arange(0, 703, f), np.arange(0, 1303, f)]).statistic
+    expected = np.where(counts > 0, want.statistic, np.nan)
+    assert np.isnan(got[:10, :13]).all()
+    np.testing.assert_allclose(got, expected, rtol=2e-6)
+
+
+def test_hillshade_is_matplotlibs_lightsource():
+    from matplotlib.colors import LightSource
+
+    from archive.report.previews import hillshade
+
+    rng = np.random.default_rng(31)
+    y, x = np.mgrid[0:90, 0:140]
+    z = (40 * np.sin(x / 17.0) * np.cos(y / 11.0) + rng.normal(0, 0.5, x.shape)).astype(np.float32)
+    got = hillshade(z, 0.5)
+    # reference: matplotlib's LightSource, light from the north-west at 40 degrees
+    want = LightSource(azdeg=315, altdeg=40).hillshade(z, vert_exag=1, dx=0.5, dy=0.5)
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-12)
+    assert got.min() == 0 and got.max() == 1 and got[:, :70].std() > 0.1
+
+
+def test_a_preview_shows_matplotlibs_shaded_colours_cell_by_cell():
+    from matplotlib.colors import LightSource
+
+    from archive.report.previews import GridMap, preview_png
+    from archive.report.raster import NO_DATA
+
+    rng = np.random.default_rng(37)
+    y, x = np.mgrid[0:60, 0:100]
+    z = (30 + 8 * np.sin(x / 9.0) + 5 * np.cos(y / 7.0) + rng.normal(0, 0.3, x.shape)).astype(np.float32)
+    z[:4, :] = np.nan  # a strip without points shows the no-data grey
+    z[20:25, 40:48] = np.nan
+    grid = GridMap(z, 600_000.5 + np.arange(100), 7_000_000.5 - np.arange(60))  # north-up, 1 m cells
+    img = _decode(preview_png(grid, title="t", crop=False))
+    # reference: matplotlib colours the percentile-stretched values (cividis, as its colormaps index
+    # bytes) and shades them with LightSource soft light; empty cells are filled with the mean first
+    valid = np.isfinite(z)
+    lo, hi = np.nanpercentile(z.astype(np.float64), [1, 99])
+    filled = np.where(valid, z.astype(np.float64), np.nanmean(z.astype(np.float64)))
+    rgb = matplotlib.colormaps["cividis"](Normalize(lo, hi)(filled), bytes=True)[..., :3] / 255.0
+    shaded = LightSource(azdeg=315, altdeg=40).shade_rgb(rgb, filled, blend_mode="soft", dx=1.0, dy=1.0)
+    want = np.round(np.clip(shaded, 0, 1) * 255).astype(int)
+    want[~valid] = NO_DATA
+    # 100 × 60 cells fill the 600-pixel-wide map: 6 × 6 pixels each, below a 34-pixel title band
+    centres = img[34 + 3 : 34 + 360 : 6, 12 + 3 : 12 + 600 : 6].astype(int)
+    assert centres.shape == want.shape
+    centres, want = centres[:54], want[:54]  # the scale bar covers the bottom rows
+    assert np.abs(centres - want).max() <= 1  # rounding of the shade's last bits, no more
+    assert (centres == want).all(axis=2).mean() > 0.999

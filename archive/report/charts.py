@@ -8,7 +8,6 @@ the coverage chart with matplotlib's date ticks and labels.
 
 from __future__ import annotations
 
-import io
 from collections.abc import Sequence
 from datetime import datetime
 from typing import TYPE_CHECKING
@@ -19,8 +18,8 @@ import numpy as np
 from PIL import Image, ImageDraw
 
 from archive.report.health import Gap
-from archive.report.previews import _array_extent, _block_mean, change_png, crop_to_data, preview_png
-from archive.report.raster import Scale, colorize, font, map_png
+from archive.report.previews import _array_extent, _block_mean, _crop, _double, change_png, preview_png
+from archive.report.raster import Scale, colorize, font, map_png, png_bytes
 
 if TYPE_CHECKING:
     import xarray as xr
@@ -46,7 +45,7 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
                    gaps: Sequence[Gap], title: str) -> bytes:
     """Scans over time (top strip) and points per scan (stems below), gaps shaded in both.
 
-    Drawn with Pillow at twice the size and reduced (smooth edges); the date ticks and their
+    Drawn with Pillow at twice the size and averaged down (smooth edges); the date ticks and their
     labels are matplotlib's own (AutoDateLocator, ConciseDateFormatter), without a figure.
     """
     t = np.array([mdates.date2num(x.replace(tzinfo=None)) for x in times], dtype=float)
@@ -65,7 +64,8 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
     formatter = mdates.ConciseDateFormatter(locator)
     xlabels = formatter.format_ticks(xticks) if xticks else []
     yticks = [v for v in mticker.MaxNLocator(5).tick_values(0, top) if 0 <= v <= top]
-    eng = mticker.EngFormatter(sep="")
+    # plain text, said outright: left to the rc settings, the formatter loads the font manager (30 ms)
+    eng = mticker.EngFormatter(sep="", usetex=False, useMathText=False)
 
     img = Image.new("RGB", (WIDTH * SS, HEIGHT * SS), "white")
     d = ImageDraw.Draw(img)
@@ -123,10 +123,9 @@ def coverage_chart(times: Sequence[datetime], points: Sequence[int], partial: Se
         x -= 22 * SS
         d.rectangle((x, 15 * SS, x + 16 * SS, 23 * SS), fill=colour)
         x -= 14 * SS
-    img = img.resize((WIDTH, HEIGHT), Image.Resampling.LANCZOS)
-    buf = io.BytesIO()
-    img.save(buf, format="PNG", compress_level=1)
-    return buf.getvalue()
+    # each pixel the mean of its SS × SS samples: supersampling's own filter, a tenth of the
+    # time of a Lanczos resize and the same look (edges differ by a few levels, no overshoot)
+    return png_bytes(img.reduce(SS))
 
 
 def elevation_map(elevation: xr.DataArray | GridMap, title: str, crop: bool = True) -> bytes:
@@ -145,10 +144,12 @@ def density_map(point_count: xr.DataArray | GridMap, title: str, crop: bool = Tr
     into one end of the palette. A grid too big to show cell by cell shows the points per m² of
     each block of cells, empty cells included."""
     counts, extent, cell = _array_extent(point_count)
-    counts = np.where(counts > 0, counts, np.nan)
+    held = counts > 0
     if crop:
-        counts, extent = crop_to_data(counts, extent, cell)
-    counts, extent, block = _block_mean(counts, extent, cell, total=True)  # a big grid: points per block
+        counts, held, extent = _crop(counts, held, extent, cell)
+    # a big grid: points per block; empty cells and blocks NaN
+    counts, extent, block = _block_mean(counts, extent, cell, total=True, held=held)
+    counts = _double(counts)
     density = counts / (block * block)
     finite = density[np.isfinite(density)]
     if not finite.size:

@@ -236,9 +236,11 @@ def _draw_maps(cube_url: str, storage_options: dict | None, st: StationHealth, n
     if len(times) >= 3:
         pairs.append(("whole record", 0, len(times) - 1))
     for label, i, j in pairs:
-        change = (maps[j] - maps[i]).astype(np.float32)  # as archive.grids.change.epoch_change computes it
+        # as archive.grids.change.epoch_change computes it, inside the window (outside it the
+        # latest epoch has no data, so neither has the change)
+        change = (maps[j][rows, cols] - maps[i][rows, cols]).astype(np.float32)
         figures.append(_figure(
-            charts.change_map(GridMap(change[rows, cols], x, y), f"elevation change, {label}"),
+            charts.change_map(GridMap(change, x, y), f"elevation change, {label}"),
             f"Elevation change over the {label} at station {st.station}",
             f"Change over the {label}: {ids[j]} − {ids[i]} ({_when(_utc(times[i]))} → "
             f"{_when(_utc(times[j]))}); "

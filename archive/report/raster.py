@@ -10,8 +10,9 @@ migration draws a preview per scan and the health page draws four maps per stati
 
 from __future__ import annotations
 
-import io
 import math
+import struct
+import zlib
 from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
@@ -62,10 +63,15 @@ def palette(name: str) -> np.ndarray:
 def colorize(values: np.ndarray, scale: Scale) -> np.ndarray:
     """RGBA uint8 of ``values``: the index rule of matplotlib's colormaps (floor(f * 256), ends
     clipped), NaN fully transparent."""
-    f = scale.fraction(values)
+    f = scale.fraction(values)  # a new array: worked on in place
     finite = np.isfinite(f)
-    index = np.clip(np.floor(np.where(finite, f, 0) * 256), 0, 255).astype(np.uint8)
-    rgba = palette(scale.palette)[index]
+    np.multiply(f, 256, out=f)
+    np.floor(f, out=f)
+    np.clip(f, 0, 255, out=f)
+    index = np.where(finite, f, 0).astype(np.uint8)
+    # one 4-byte word per colour: a gather of words is several times faster than of table rows
+    rgba = palette(scale.palette).view(np.uint32).reshape(256).take(index).view(np.uint8)
+    rgba = rgba.reshape(*index.shape, 4)
     rgba[..., 3] = np.where(finite, rgba[..., 3], 0)
     return rgba
 
@@ -135,9 +141,30 @@ def map_png(rgba: np.ndarray, extent: tuple[float, float, float, float], scale: 
         draw.text((x0, y0 + h + 23), note, fill=SOFT, font=small)
     if scale is not None:
         _colour_bar(canvas, draw, (x0 + w + pad, y0, h), scale, small, extend)
-    buf = io.BytesIO()
-    canvas.save(buf, format="PNG", compress_level=1)  # level 6 is 2x slower for 6 % less
-    return buf.getvalue()
+    return png_bytes(canvas)
+
+
+def png_bytes(image: Image.Image) -> bytes:
+    """An RGB picture as PNG bytes: rows unfiltered (filter type 0), deflate level 1.
+
+    Pillow's encoder tries all five row filters on every row, which costs as much as the
+    deflate itself; these pictures are flat colours, lines and text, where unfiltered rows
+    compress as well or better. Measured on the maps of a 1.5M-point scan: half the time of
+    Pillow's ``compress_level=1`` (itself 2x faster than level 6) and 4 to 28 % fewer bytes
+    (the coverage chart, mostly white: 6 % more).
+    The layout is the PNG standard's (signature, IHDR, one IDAT, IEND; W3C PNG 3rd edition).
+    """
+    rgb = np.asarray(image.convert("RGB") if image.mode != "RGB" else image)
+    h, w = rgb.shape[:2]
+    rows = np.zeros((h, 1 + 3 * w), np.uint8)  # each row: its filter type (0), then its pixels
+    rows[:, 1:] = rgb.reshape(h, 3 * w)
+    header = struct.pack(">IIBBBBB", w, h, 8, 2, 0, 0, 0)  # 8 bits per sample, truecolour, no interlace
+    return b"".join([b"\x89PNG\r\n\x1a\n", _chunk(b"IHDR", header),
+                     _chunk(b"IDAT", zlib.compress(rows.tobytes(), 1)), _chunk(b"IEND", b"")])
+
+
+def _chunk(kind: bytes, data: bytes) -> bytes:
+    return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data))
 
 
 def _scale_bar(draw: ImageDraw.ImageDraw, box: tuple[int, int, int, int],
