@@ -58,9 +58,9 @@ def survey_command(source, site_file, crs, output, quick, storage_options, quiet
 @click.option("--no-previews", is_flag=True, help="Do not render a preview PNG per scan.")
 @click.option("--workers", type=click.IntRange(1, 512), help="Run on a local dask cluster with this many worker processes.")
 @click.option("--scheduler", metavar="ADDRESS", callback=params.check_scheduler, help="Run on an existing dask scheduler, e.g. tcp://10.0.0.5:8786.")
-@click.option("--memory-per-worker", default=DEFAULT_MEMORY_PER_WORKER, show_default=f"{DEFAULT_MEMORY_PER_WORKER / 2**30:g}GiB",
-              type=params.BYTES,
-              help="Memory limit of each local worker; the sort of one scan stays within it.")
+@click.option("--memory-per-worker", default=DEFAULT_MEMORY_PER_WORKER, type=params.BYTES,
+              help=f"Memory limit of each local worker (default {DEFAULT_MEMORY_PER_WORKER / 2**30:g}GiB); "
+                   "the sort of one scan stays within it.")
 @storage_option
 @quiet_option
 @json_option
