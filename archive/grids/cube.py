@@ -237,35 +237,45 @@ def _map_shards(values: np.ndarray, chunk: tuple[int, int, int], shard: tuple[in
 
     The codecs themselves are numcodecs' (Quantize, Zstd) and google-crc32c, the libraries zarr
     calls; what zarr adds per inner chunk (a task, two thread hand-offs, a copy and an emptiness
-    test each) cost three times the compression itself on a 3.7M-cell map. Each shard is padded
-    to its full extent with the fill value, as zarr pads an edge chunk; an inner chunk all at
-    the fill value is left out (write_empty_chunks=False); the index (offset, length) uint64
-    pairs, 2^64-1 for a missing chunk, plus its CRC32C, follows the chunks (index_location end).
+    test each) cost more than the compression itself on a 3.7M-cell map. The map goes one row
+    of inner chunks at a time (a few MB, in cache for the quantizing and compressing), padded
+    with the fill value past the map's edge as zarr pads an edge chunk; an inner chunk all at
+    the fill value is left out (write_empty_chunks=False). The chunks follow zarr's order, then
+    the index ((offset, length) uint64 pairs, 2^64-1 for a missing chunk) and its CRC32C.
     """
     (_, cy, cx), (_, sy, sx) = chunk, shard
     rows, cols = sy // cy, sx // cx
-    dtype = values.dtype.newbyteorder("<")
     zstd = numcodecs.Zstd(level=3, checksum=False)
     quantizer = numcodecs.Quantize(digits=QUANTIZE_DIGITS, dtype="<f4") if quantize else None
+    band = np.empty((cy, sx), values.dtype.newbyteorder("<"))
     ny, nx = values.shape
     for r in range(-(-ny // sy)):
         for c in range(-(-nx // sx)):
-            part = values[r * sy:(r + 1) * sy, c * sx:(c + 1) * sx]
-            block = np.full((sy, sx), fill, dtype)
-            block[:part.shape[0], :part.shape[1]] = part
-            tiles = block.reshape(rows, cy, cols, cx)
-            empty = (np.isnan(tiles) if np.isnan(fill) else tiles == fill).all(axis=(1, 3))
-            if empty.all():
+            encoded = {}
+            for i in range(rows):
+                part = values[r * sy + i * cy:r * sy + (i + 1) * cy, c * sx:(c + 1) * sx]
+                if part.size == 0:
+                    break
+                if part.shape != band.shape:
+                    band.fill(fill)
+                band[:part.shape[0], :part.shape[1]] = part
+                tiles = band.reshape(cy, cols, cx)
+                full = ~(np.isnan(tiles) if np.isnan(fill) else tiles == fill).all(axis=(0, 2))
+                if not full.any():
+                    continue
+                if quantizer is not None:
+                    tiles = quantizer.encode(band).reshape(cy, cols, cx)
+                for j in np.flatnonzero(full).tolist():
+                    encoded[i, j] = zstd.encode(np.ascontiguousarray(tiles[:, j, :]))
+            if not encoded:
                 yield (r, c), None
                 continue
-            if quantizer is not None:
-                tiles = quantizer.encode(block).reshape(rows, cy, cols, cx)
             index = np.full((1, rows, cols, 2), 2**64 - 1, "<u8")
             parts, offset = [], 0
-            for i, j in _shard_order(rows, cols):
-                if not empty[i, j]:
-                    data = zstd.encode(np.ascontiguousarray(tiles[i, :, j, :]))
-                    index[0, i, j] = offset, len(data)
+            for key in _shard_order(rows, cols):
+                data = encoded.get(key)
+                if data is not None:
+                    index[(0, *key)] = offset, len(data)
                     offset += len(data)
                     parts.append(data)
             raw = index.tobytes()
