@@ -132,6 +132,31 @@ def test_series_copy_equals_the_map_layout_and_goes_stale(cube):
         open_cube(url, layout="series")
 
 
+def test_series_flag_is_set_once_and_read_from_the_series_group_itself(cube):
+    from archive.grids.cube import SERIES_COMPLETE
+
+    url, spec = cube
+    own, root = Path(url, "series", "zarr.json"), Path(url, "zarr.json")
+    write_series(url)
+    write_epoch(url, spec, T0 + timedelta(days=2), sid(2), epoch(spec, 102.0, 2))
+    # reference: the Zarr v3 JSON of the series group and the root's consolidated copy, read as plain JSON
+    assert json.loads(own.read_text())["attributes"][SERIES_COMPLETE] is False
+    stamp = own.stat().st_mtime_ns
+    write_epoch(url, spec, T0 + timedelta(days=3), sid(3), epoch(spec, 103.0, 3))
+    assert own.stat().st_mtime_ns == stamp  # flagged already: not rewritten
+    assert json.loads(root.read_text())["consolidated_metadata"]["metadata"]["series"]["attributes"][SERIES_COMPLETE] is False
+    # a rebuild killed after flagging its group complete, before consolidating: the root's copy
+    # still says stale, the group says complete; the next append must flag the group itself
+    write_series(url)
+    meta = json.loads(root.read_text())
+    meta["consolidated_metadata"]["metadata"]["series"]["attributes"][SERIES_COMPLETE] = False
+    root.write_text(json.dumps(meta))
+    write_epoch(url, spec, T0 + timedelta(days=4), sid(4), epoch(spec, 104.0, 4))
+    assert json.loads(own.read_text())["attributes"][SERIES_COMPLETE] is False
+    with pytest.raises(ValueError, match="stale"):
+        open_cube(url, layout="series")
+
+
 def test_naive_time_is_refused(tmp_path):
     spec = spec_()
     with pytest.raises(ValueError, match="timezone-aware"):

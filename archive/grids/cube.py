@@ -34,6 +34,7 @@ import uuid
 import warnings
 from dataclasses import dataclass
 from datetime import datetime, timezone
+from collections.abc import Iterable
 from typing import TYPE_CHECKING
 
 import google_crc32c
@@ -230,6 +231,20 @@ def _shard_order(rows: int, cols: int) -> tuple[tuple[int, int], ...]:
     return tuple(zip(y[order].tolist(), x[order].tolist()))
 
 
+def shard_bytes(chunks: Iterable[tuple[tuple[int, ...], bytes]], grid: tuple[int, ...]) -> bytes:
+    """A Zarr v3 shard object (``sharding_indexed``, index at the end): the encoded inner chunks
+    in the order given, then the index of (offset, length) uint64 pairs over the shard's chunk
+    grid in C order (2^64-1 for a chunk not stored), little-endian, then the index's CRC32C."""
+    index = np.full((*grid, 2), 2**64 - 1, "<u8")
+    parts, offset = [], 0
+    for key, data in chunks:
+        index[key] = offset, len(data)
+        offset += len(data)
+        parts.append(data)
+    raw = index.tobytes()
+    return b"".join([*parts, raw, google_crc32c.value(raw).to_bytes(4, "little")])
+
+
 def _map_shards(values: np.ndarray, chunk: tuple[int, int, int], shard: tuple[int, int, int], fill,
                 quantize: bool):
     """((shard row, shard column), object bytes or None when every inner chunk is empty) of one
@@ -267,19 +282,8 @@ def _map_shards(values: np.ndarray, chunk: tuple[int, int, int], shard: tuple[in
                     tiles = quantizer.encode(band).reshape(cy, cols, cx)
                 for j in np.flatnonzero(full).tolist():
                     encoded[i, j] = zstd.encode(np.ascontiguousarray(tiles[:, j, :]))
-            if not encoded:
-                yield (r, c), None
-                continue
-            index = np.full((1, rows, cols, 2), 2**64 - 1, "<u8")
-            parts, offset = [], 0
-            for key in _shard_order(rows, cols):
-                data = encoded.get(key)
-                if data is not None:
-                    index[(0, *key)] = offset, len(data)
-                    offset += len(data)
-                    parts.append(data)
-            raw = index.tobytes()
-            yield (r, c), b"".join([*parts, raw, np.array([google_crc32c.value(raw)], "<u4").tobytes()])
+            order = ((key, encoded[key]) for key in _shard_order(rows, cols) if key in encoded)
+            yield (r, c), shard_bytes(order, (rows, cols)) if encoded else None
 
 
 def _write_map_step(fs, path: str, array: zarr.Array, step: int, values: np.ndarray) -> bool:
@@ -289,8 +293,7 @@ def _write_map_step(fs, path: str, array: zarr.Array, step: int, values: np.ndar
     meta = array.metadata.to_dict()
     chunk, shard = array.chunks, array.shards
     fill = array.fill_value
-    plain = (meta["chunk_key_encoding"] == {"name": "default", "configuration": {"separator": "/"}}
-             and shard is not None and len(shard) == 3 and shard[0] == 1 and chunk[0] == 1
+    plain = (shard is not None and len(shard) == 3 and shard[0] == 1 and chunk[0] == 1
              and shard[1] % chunk[1] == 0 and shard[2] % chunk[2] == 0
              and json.loads(json.dumps(meta["codecs"])) == map_codecs(array.basename, chunk)
              and (np.isnan(fill) if array.dtype == np.float32 else array.dtype == np.uint32))
@@ -298,7 +301,7 @@ def _write_map_step(fs, path: str, array: zarr.Array, step: int, values: np.ndar
         return False
     quantize = array.basename in FLOAT_VARS
     for (r, c), data in _map_shards(values[0], chunk, shard, fill, quantize):
-        key = f"{path}/{array.path}/c/{step}/{r}/{c}"
+        key = f"{path}/{array.path}/{array.metadata.encode_chunk_key((step, r, c))}"
         if data is None:
             if fs.exists(key):
                 fs.rm_file(key)
@@ -332,9 +335,17 @@ def read_spec(cube_url: str, storage_options: dict | None = None) -> GridSpec | 
 
 
 def _mark_series_stale(cube_url: str, storage_options: dict | None) -> None:
-    """Flag the series copy as out of date *before* the root changes (safe if we die between)."""
+    """Flag the series copy as out of date *before* the root changes (safe if we die between).
+
+    The series group's own metadata says whether it is flagged already (write_series sets the
+    flag before it consolidates): then every later append skips a rewrite and a consolidation."""
     fs, path = filesystem(cube_url, storage_options)
-    if fs.exists(f"{path}/{SERIES_GROUP}/zarr.json"):
+    try:
+        with fs.open(f"{path}/{SERIES_GROUP}/zarr.json", "rb") as f:
+            flagged = json.load(f).get("attributes", {}).get(SERIES_COMPLETE) is False
+    except FileNotFoundError:
+        return
+    if not flagged:
         group = zarr.open_group(zarr_store(cube_url, storage_options), path=SERIES_GROUP, mode="r+",
                                 zarr_format=3, use_consolidated=False)
         group.attrs[SERIES_COMPLETE] = False
@@ -351,14 +362,14 @@ def write_epoch(
 ) -> int:
     """Add (or replace) one scan's time step; returns its storage index along time.
 
-    The first call creates the cube under a temporary name and renames it into place. Every
-    call writes through zarr only, without xarray or a dataset (importing xarray and the dask
-    it pulls in costs every migrate process and worker about 0.4 CPU-second): the new cube is
-    what xarray's ``to_zarr`` of :func:`epoch_dataset` with :func:`map_encoding` writes, byte
-    for byte. Later calls grow each array along time by one and give it the step's values, so
-    only the new epoch's shards and the small time/scan_id/points_outside objects are written.
-    A scan id already present (or a slot left empty by an interrupted append) is overwritten
-    in place.
+    The first call creates the cube under a temporary name and renames it into place. No call
+    goes through xarray or a dataset (importing xarray and the dask it pulls in costs every
+    migrate process and worker about 0.4 CPU-second): the new cube is what xarray's ``to_zarr``
+    of :func:`epoch_dataset` with :func:`map_encoding` writes, byte for byte. Later calls grow
+    each array along time by one (zarr writes the metadata and the small time/scan_id/
+    points_outside objects) and write only the new epoch's map shards (``_write_map_step``,
+    byte for byte what zarr would). A scan id already present (or a slot left empty by an
+    interrupted append) is overwritten in place.
     """
     existing = read_spec(cube_url, storage_options)
     if existing is None:
@@ -385,15 +396,11 @@ def write_epoch(
     if slot.size == 0:
         slot = np.flatnonzero(ids == "")  # left by an interrupted append, or a retired scan's
     fs, path = filesystem(cube_url, storage_options)
-
-    def put(name: str, a: zarr.Array, i: int) -> None:
-        if name not in CUBE_VARS or not _write_map_step(fs, path, a, i, values[name]):
-            a[i : i + 1] = values[name]
-
     if slot.size:
         i = int(slot[0])
         for name, a in arrays.items():
-            put(name, a, i)
+            if name not in CUBE_VARS or not _write_map_step(fs, path, a, i, values[name]):
+                a[i : i + 1] = values[name]
         return i
     # the root's metadata loses its consolidated copy first and gets it back last: an append cut
     # short shows, and migrate's _repair_cube cuts the arrays back to the shortest. scan_id goes
@@ -401,8 +408,12 @@ def write_epoch(
     root.update_attributes({})
     i = int(ids.size)
     for name, a in arrays.items():
-        a.resize((i + 1, *a.shape[1:]))
-        put(name, a, i)
+        if name in CUBE_VARS:
+            a.resize((i + 1, *a.shape[1:]))
+            if not _write_map_step(fs, path, a, i, values[name]):
+                a[i : i + 1] = values[name]
+        else:
+            a.append(values[name])  # resize and write in one call: what a resize and an assignment write
     zarr.consolidate_metadata(store)
     return i
 
