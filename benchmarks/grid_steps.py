@@ -11,7 +11,10 @@ threads count; the lowest of --rounds rounds, because a shared machine only ever
    at 0.5 m, as in benchmarks/migrate.py);
 2. ``write_epoch``: the first step (creates the cube) and each append of --scans scans;
 3. the fixed part of an append: the same on a 64 × 64 grid, where there is almost nothing to
-   encode.
+   encode;
+4. the codec floor of one step: numcodecs Quantize + Zstd of the step's stored inner chunks
+   alone (what any writer of these bytes must spend), beside the map shards as write_epoch
+   encodes them (``_map_shards``: the same plus padding, emptiness tests, index and CRC).
 """
 
 from __future__ import annotations
@@ -23,10 +26,12 @@ import time
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
+import numcodecs
 import numpy as np
 
 from archive.grids import GridAccumulator, GridSpec, write_epoch
 from archive.grids.binning import EpochGrid
+from archive.grids.cube import CUBE_VARS, FLOAT_VARS, QUANTIZE_DIGITS, _map_shards, map_shard
 
 BATCH = 1 << 18  # rows per batch handed to the binner (archive.points.write.BATCH_ROWS)
 
@@ -82,6 +87,33 @@ def steps(spec: GridSpec, epoch: EpochGrid, scans: int, rounds: int, label: str)
           f"{', '.join(f'{1e3 * v:.0f}' for v in appends)} ms CPU (mean {1e3 * sum(appends) / len(appends):.0f})")
 
 
+def codec_floor(spec: GridSpec, epoch: EpochGrid, rounds: int) -> None:
+    chunk, shard = map_shard(spec.ny, spec.nx)
+    cy, cx = chunk[1:]
+    zstd, quantize = numcodecs.Zstd(level=3, checksum=False), numcodecs.Quantize(QUANTIZE_DIGITS, dtype="<f4")
+    stored = []  # the inner chunks a step stores (not all at the fill value), as the codecs get them
+    for name in CUBE_VARS:
+        values = getattr(epoch, name)
+        for y in range(0, spec.ny, cy):
+            for x in range(0, spec.nx, cx):
+                tile = np.ascontiguousarray(values[y:y + cy, x:x + cx])
+                if not (np.isnan(tile).all() if name in FLOAT_VARS else not tile.any()):
+                    stored.append((name in FLOAT_VARS, tile))
+    floor = ours = float("inf")
+    for _ in range(rounds):
+        c = time.process_time()
+        for quantized, tile in stored:
+            zstd.encode(quantize.encode(tile) if quantized else tile)
+        c1 = time.process_time()
+        for name in CUBE_VARS:
+            fill = np.float32(np.nan) if name in FLOAT_VARS else np.uint32(0)
+            list(_map_shards(getattr(epoch, name), chunk, shard, fill, name in FLOAT_VARS))
+        c2 = time.process_time()
+        floor, ours = min(floor, c1 - c), min(ours, c2 - c1)
+    print(f"one step's map shards, {len(stored)} stored inner chunks: codecs alone {1e3 * floor:.0f} ms, "
+          f"as write_epoch encodes them {1e3 * ours:.0f} ms CPU")
+
+
 def main() -> None:
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--points", type=int, default=1_500_000)
@@ -92,6 +124,7 @@ def main() -> None:
     args = p.parse_args()
     spec = GridSpec(station="north", crs_wkt="EPSG:32633", x0=500000.0, y0=7650000.0, cell=0.5, nx=args.nx, ny=args.ny)
     epoch = binning(spec, args.points, args.rounds)
+    codec_floor(spec, epoch, args.rounds)
     steps(spec, epoch, args.scans, args.rounds, f"{spec.nx} x {spec.ny} cells")
     small = GridSpec(station="north", crs_wkt="EPSG:32633", x0=500000.0, y0=7650000.0, cell=0.5, nx=64, ny=64)
     tiny = EpochGrid(np.full((64, 64), 5.0, np.float32), np.zeros((64, 64), np.float32), np.ones((64, 64), np.uint32), 0)
