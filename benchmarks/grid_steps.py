@@ -1,14 +1,17 @@
 """Per-scan grid costs of a migration: binning a scan's batches, and appending its cube step.
 
     python benchmarks/grid_steps.py [--points 1500000] [--nx 2523] [--ny 1468] [--scans 5] [--rounds 3]
+                                    [--scanner]
 
 Prints CPU milliseconds (time.process_time: this process and its threads, so zarr's codec
 threads count; the lowest of --rounds rounds, because a shared machine only ever adds time) for
 
 1. ``GridAccumulator.add`` over one scan fed as migrate feeds it: batches of 2^18 points in
    block order (a stand-in for Hilbert order: each batch covers a compact block of the grid),
-   and ``finish``, on a grid of --nx × --ny cells (the default is the demo scanner's station grid
-   at 0.5 m, as in benchmarks/migrate.py);
+   and ``finish``, on a grid of --nx × --ny cells at 0.5 m; with --scanner, the points of the
+   demo scanner model (archive.demo.scanner, what benchmarks/migrate.py writes), in block
+   order too, on the grid migrate derives for them (their bounds, the default 10 m margin and 1 m
+   cells): smoother maps, which compress as the migrate benchmark's cube steps do;
 2. ``write_epoch``: the first step (creates the cube) and each append of --scans scans;
 3. the fixed part of an append: the same on a 64 × 64 grid, where there is almost nothing to
    encode;
@@ -49,8 +52,20 @@ def scan_points(spec: GridSpec, n: int, seed: int) -> tuple[np.ndarray, np.ndarr
     return x[order], y[order], z[order]
 
 
-def binning(spec: GridSpec, points: int, rounds: int) -> EpochGrid:
-    x, y, z = scan_points(spec, points, 1)
+def scanner_points(points: int) -> tuple[GridSpec, np.ndarray, np.ndarray, np.ndarray]:
+    from archive.demo import scanner
+
+    chunks = list(scanner.sweep(scanner.STATIONS[0], datetime(2026, 9, 1, 6, tzinfo=timezone.utc).timestamp(),
+                                points, (1, 0)))
+    x, y, z = (np.concatenate([c[k] for c in chunks]) for k in "xyz")
+    spec = GridSpec.from_bounds("north", (x.min(), y.min(), x.max(), y.max()), 1.0, 10.0, "EPSG:32633")
+    block = 64 * spec.cell  # batches in block order, as scan_points
+    order = np.lexsort((np.floor((x - spec.x0) / block), np.floor((y - spec.y0) / block)))
+    return spec, x[order], y[order], z[order]
+
+
+def binning(spec: GridSpec, x: np.ndarray, y: np.ndarray, z: np.ndarray, rounds: int) -> EpochGrid:
+    points = x.size
     add = fin = float("inf")
     for _ in range(rounds):
         acc = GridAccumulator(spec)
@@ -121,9 +136,15 @@ def main() -> None:
     p.add_argument("--ny", type=int, default=1468)
     p.add_argument("--scans", type=int, default=5)
     p.add_argument("--rounds", type=int, default=3)
+    p.add_argument("--scanner", action="store_true", help="the demo scanner model's points and station grid")
     args = p.parse_args()
-    spec = GridSpec(station="north", crs_wkt="EPSG:32633", x0=500000.0, y0=7650000.0, cell=0.5, nx=args.nx, ny=args.ny)
-    epoch = binning(spec, args.points, args.rounds)
+    if args.scanner:
+        spec, x, y, z = scanner_points(args.points)
+    else:
+        spec = GridSpec(station="north", crs_wkt="EPSG:32633", x0=500000.0, y0=7650000.0, cell=0.5, nx=args.nx,
+                        ny=args.ny)
+        x, y, z = scan_points(spec, args.points, 1)
+    epoch = binning(spec, x, y, z, args.rounds)
     codec_floor(spec, epoch, args.rounds)
     steps(spec, epoch, args.scans, args.rounds, f"{spec.nx} x {spec.ny} cells")
     small = GridSpec(station="north", crs_wkt="EPSG:32633", x0=500000.0, y0=7650000.0, cell=0.5, nx=64, ny=64)
