@@ -10,7 +10,7 @@ Two layouts live in one store, because no single chunking serves both common rea
   are never rewritten. Inner chunks with no data are not stored (``write_empty_chunks=False``).
   zarr writes the metadata and the 1-D arrays; each epoch's map shards are encoded here with
   the same codecs (numcodecs Quantize and Zstd, google-crc32c) and written whole, byte for byte
-  what zarr's sharding writer stores (tests compare), at a third of its CPU time.
+  what zarr's sharding writer stores (tests compare), in about half its CPU time.
 * the ``series`` group ("series layout") is a derived copy built by
   :func:`archive.grids.series.write_series` after a batch of appends: shards of all epochs over
   a square of pixels, sized from the map and the number of epochs (see ``series_shape``), so
