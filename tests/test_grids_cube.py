@@ -132,6 +132,31 @@ def test_series_copy_equals_the_map_layout_and_goes_stale(cube):
         open_cube(url, layout="series")
 
 
+def test_series_flag_is_set_once_and_read_from_the_series_group_itself(cube):
+    from archive.grids.cube import SERIES_COMPLETE
+
+    url, spec = cube
+    own, root = Path(url, "series", "zarr.json"), Path(url, "zarr.json")
+    write_series(url)
+    write_epoch(url, spec, T0 + timedelta(days=2), sid(2), epoch(spec, 102.0, 2))
+    # reference: the Zarr v3 JSON of the series group and the root's consolidated copy, read as plain JSON
+    assert json.loads(own.read_text())["attributes"][SERIES_COMPLETE] is False
+    stamp = own.stat().st_mtime_ns
+    write_epoch(url, spec, T0 + timedelta(days=3), sid(3), epoch(spec, 103.0, 3))
+    assert own.stat().st_mtime_ns == stamp  # flagged already: not rewritten
+    assert json.loads(root.read_text())["consolidated_metadata"]["metadata"]["series"]["attributes"][SERIES_COMPLETE] is False
+    # a rebuild killed after flagging its group complete, before consolidating: the root's copy
+    # still says stale, the group says complete; the next append must flag the group itself
+    write_series(url)
+    meta = json.loads(root.read_text())
+    meta["consolidated_metadata"]["metadata"]["series"]["attributes"][SERIES_COMPLETE] = False
+    root.write_text(json.dumps(meta))
+    write_epoch(url, spec, T0 + timedelta(days=4), sid(4), epoch(spec, 104.0, 4))
+    assert json.loads(own.read_text())["attributes"][SERIES_COMPLETE] is False
+    with pytest.raises(ValueError, match="stale"):
+        open_cube(url, layout="series")
+
+
 def test_naive_time_is_refused(tmp_path):
     spec = spec_()
     with pytest.raises(ValueError, match="timezone-aware"):
@@ -277,3 +302,48 @@ def test_cube_steps_read_what_xarray_reads_sorted_without_blank_slots(cube):
     for k in range(3):
         np.testing.assert_array_equal(steps.read("elevation", k), ds["elevation"][k].values)
         np.testing.assert_array_equal(steps.read("point_count", k), ds["point_count"][k].values)
+
+
+@pytest.mark.parametrize("case", ["one-shard", "several-shards"])
+def test_appended_and_replaced_steps_are_byte_identical_to_zarrs_own_writer(tmp_path, case):
+    """Steps after the first write their map shards without zarr's array writer; the store must
+    be what zarr-python's sharding writer stores for the same appends, object for object."""
+    from archive.grids.cube import epoch_dataset, map_encoding
+
+    w = 2100.0 if case == "several-shards" else 290.0  # 2010 x 2110 float32 cells > 16 MB: 2 shards of 8 x 5 chunks
+    spec = GridSpec.from_bounds("north", (500000.0, 7650000.0, 500000.0 + w, 7650000.0 + 190.0 + (w - 290.0)),
+                                cell=1.0, margin=5.0, crs_wkt=CRS.from_user_input(EPSG).to_wkt())
+    rng = np.random.default_rng(11)
+    x, y = rng.uniform(spec.x0, spec.x0 + 300, 20_000), rng.uniform(spec.y0, spec.y0 + 300, 20_000)
+    steps = [(0, epoch(spec, 100.0, 0)), (1, bin_points(spec, x, y, 90 + 0.01 * y)),  # one corner only
+             (2, bin_points(spec, x[:0], y[:0], x[:0])),  # no points: no map objects at all
+             (1, epoch(spec, 101.0, 5))]  # the same scan again: replaced in place
+    steps[1][1].outside = 9
+    ours = tmp_path / "ours.zarr"
+    for day, grid in steps:
+        write_epoch(str(ours), spec, T0 + timedelta(days=day), sid(day), grid)
+    # reference: xarray's to_zarr for the first step, then zarr-python's own array writer (its
+    # sharding codec) for each later step: resize along time, assign the step, consolidate
+    theirs = tmp_path / "theirs.zarr"
+    epoch_dataset(spec, T0, sid(0), steps[0][1]).to_zarr(
+        str(theirs), zarr_format=3, consolidated=True, mode="w-", encoding=map_encoding(spec), write_empty_chunks=False)
+    slots = [sid(0)]
+    for day, grid in steps[1:]:
+        group = zarr.open_group(str(theirs), mode="r+", zarr_format=3, use_consolidated=False)
+        i = slots.index(sid(day)) if sid(day) in slots else len(slots)
+        seconds = np.datetime64((T0 + timedelta(days=day)).replace(tzinfo=None), "s").astype(np.int64)
+        row = {"elevation": grid.elevation, "elevation_std": grid.elevation_std, "point_count": grid.point_count,
+               "time": seconds, "points_outside": np.uint64(grid.outside), "scan_id": sid(day)}
+        for name, value in row.items():
+            a = group[name].with_config({"write_empty_chunks": False})
+            if i == len(slots):
+                a.resize((i + 1, *a.shape[1:]))
+            a[i : i + 1] = np.asarray(value, a.dtype if name != "scan_id" else object)[np.newaxis]
+        slots[i:i + 1] = [sid(day)]
+        zarr.consolidate_metadata(str(theirs))
+    mine, ref = _files(ours), _files(theirs)
+    assert sorted(mine) == sorted(ref)
+    assert [name for name in mine if mine[name] != ref[name]] == []
+    maps = {n for n in mine if n.startswith("elevation/c/")}
+    assert maps == ({f"elevation/c/{t}/0/{c}" for t in (0, 1) for c in (0, 1)} if case == "several-shards"
+                    else {"elevation/c/0/0/0", "elevation/c/1/0/0"})

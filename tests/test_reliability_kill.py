@@ -70,7 +70,7 @@ def work(tmp_path_factory):
     check_consistent(ref)
     counts = killing.crash_counts(log)
     # every named point of the write path is reached in a clean run
-    assert {"survey.written", "points.row_group", "points.written", "points.renamed", "grid.epoch",
+    assert {"survey.written", "points.row_group", "points.written", "points.renamed", "grid.shard", "grid.epoch",
             "ledger.committed", "catalog.file", "zarr.object", "report.written"} <= set(counts), counts
     return base, source, ref, killing.shelf_state(ref), counts, clean.seconds
 
@@ -86,7 +86,7 @@ def _spread(count: int, k: int) -> list[int]:
 
 def kill_plan(counts) -> list[str]:
     picks = {"survey.written": 1, "points.row_group": 1, "points.written": 2, "points.renamed": 2,
-             "grid.epoch": 2, "ledger.committed": 2, "catalog.file": 3, "zarr.object": 4,
+             "grid.shard": 2, "grid.epoch": 2, "ledger.committed": 2, "catalog.file": 3, "zarr.object": 4,
              "report.written": 1}
     return [f"{name}:{n}" for name, k in picks.items() for n in _spread(counts[name], k)]
 

@@ -8,6 +8,9 @@ Two layouts live in one store, because no single chunking serves both common rea
   or a few objects). Reading one epoch's map is one object and almost exactly its own bytes;
   appending an epoch only *adds* objects (the arrays along time grow by one), so earlier epochs' chunks
   are never rewritten. Inner chunks with no data are not stored (``write_empty_chunks=False``).
+  zarr writes the metadata and the 1-D arrays; each epoch's map shards are encoded here with
+  the same codecs (numcodecs Quantize and Zstd, google-crc32c) and written whole, byte for byte
+  what zarr's sharding writer stores (tests compare), in about half its CPU time.
 * the ``series`` group ("series layout") is a derived copy built by
   :func:`archive.grids.series.write_series` after a batch of appends: shards of all epochs over
   a square of pixels, sized from the map and the number of epochs (see ``series_shape``), so
@@ -26,23 +29,29 @@ One writer per station cube at a time.
 
 from __future__ import annotations
 
+import functools
 import json
 import math
+import os
 import uuid
 import warnings
+from collections.abc import Iterable
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from typing import TYPE_CHECKING
 
+import google_crc32c
+import numcodecs
 import numpy as np
 import zarr
 from pyproj import CRS
 from zarr.codecs import ZstdCodec
 from zarr.codecs.numcodecs import Quantize
 
+from archive.crashpoints import crash_point
 from archive.grids.binning import EpochGrid
 from archive.grids.spec import GridSpec
-from archive.storage import filesystem
+from archive.storage import filesystem, is_local
 
 if TYPE_CHECKING:
     import xarray as xr
@@ -198,6 +207,122 @@ def map_encoding(spec: GridSpec) -> dict:
     return enc
 
 
+def map_codecs(name: str, chunk: tuple[int, int, int]) -> list[dict]:
+    """The codecs of a map-layout variable as its Zarr v3 metadata states them (see map_encoding)."""
+    inner = [{"name": "bytes", "configuration": {"endian": "little"}},
+             {"name": "zstd", "configuration": {"level": 3, "checksum": False}}]
+    if name in FLOAT_VARS:
+        inner.insert(0, {"name": "numcodecs.quantize", "configuration": {"digits": QUANTIZE_DIGITS, "dtype": "<f4"}})
+    return [{"name": "sharding_indexed", "configuration": {
+        "chunk_shape": list(chunk), "codecs": inner, "index_location": "end",
+        "index_codecs": [{"name": "bytes", "configuration": {"endian": "little"}}, {"name": "crc32c"}]}}]
+
+
+@functools.lru_cache(maxsize=8)
+def _shard_order(rows: int, cols: int) -> tuple[tuple[int, int], ...]:
+    """Inner chunks of a (1, rows, cols)-chunk shard in the order zarr-python places them: Morton
+    order, the row bit before the column bit at each level (a dimension out of bits drops out)."""
+    y, x = np.divmod(np.arange(rows * cols), cols)
+    code = np.zeros(rows * cols, np.int64)
+    bit = 0
+    for level in range(max((rows - 1).bit_length(), (cols - 1).bit_length())):
+        for axis, n in ((y, rows), (x, cols)):
+            if level < (n - 1).bit_length():
+                code |= ((axis >> level) & 1) << bit
+                bit += 1
+    order = np.argsort(code, kind="stable")
+    return tuple(zip(y[order].tolist(), x[order].tolist()))
+
+
+def shard_bytes(chunks: Iterable[tuple[tuple[int, ...], bytes]], grid: tuple[int, ...]) -> bytes:
+    """A Zarr v3 shard object (``sharding_indexed``, index at the end): the encoded inner chunks
+    in the order given, then the index of (offset, length) uint64 pairs over the shard's chunk
+    grid in C order (2^64-1 for a chunk not stored), little-endian, then the index's CRC32C."""
+    index = np.full((*grid, 2), 2**64 - 1, "<u8")
+    parts, offset = [], 0
+    for key, data in chunks:
+        index[key] = offset, len(data)
+        offset += len(data)
+        parts.append(data)
+    raw = index.tobytes()
+    return b"".join([*parts, raw, google_crc32c.value(raw).to_bytes(4, "little")])
+
+
+def _map_shards(values: np.ndarray, chunk: tuple[int, int, int], shard: tuple[int, int, int], fill,
+                quantize: bool):
+    """((shard row, shard column), object bytes or None when every inner chunk is empty) of one
+    epoch's (y, x) map, encoded as zarr's sharding codec encodes them with ``map_codecs``.
+
+    The codecs themselves are numcodecs' (Quantize, Zstd), the library zarr calls; what zarr
+    adds per inner chunk (a task, two thread hand-offs, a copy and an emptiness test each) cost
+    more than the compression itself on a 3.7M-cell map (benchmarks/grid_steps.py). The map
+    goes one row of inner chunks at a time (a few MB, in cache for quantizing and compressing),
+    padded with the fill value past the map's edge as zarr pads an edge chunk; an inner chunk
+    all at the fill value is left out (write_empty_chunks=False); the rest go in zarr's order.
+    """
+    (_, cy, cx), (_, sy, sx) = chunk, shard
+    rows, cols = sy // cy, sx // cx
+    zstd = numcodecs.Zstd(level=3, checksum=False)
+    quantizer = numcodecs.Quantize(digits=QUANTIZE_DIGITS, dtype="<f4") if quantize else None
+    band = np.empty((cy, sx), values.dtype.newbyteorder("<"))
+    ny, nx = values.shape
+    for r in range(-(-ny // sy)):
+        for c in range(-(-nx // sx)):
+            encoded = {}
+            for i in range(rows):
+                part = values[r * sy + i * cy:r * sy + (i + 1) * cy, c * sx:(c + 1) * sx]
+                if part.size == 0:
+                    break
+                if part.shape != band.shape:
+                    band.fill(fill)
+                band[:part.shape[0], :part.shape[1]] = part
+                tiles = band.reshape(cy, cols, cx)
+                full = ~(np.isnan(tiles) if np.isnan(fill) else tiles == fill).all(axis=(0, 2))
+                if not full.any():
+                    continue
+                if quantizer is not None:
+                    tiles = quantizer.encode(band).reshape(cy, cols, cx)
+                for j in np.flatnonzero(full).tolist():
+                    encoded[i, j] = zstd.encode(np.ascontiguousarray(tiles[:, j, :]))
+            order = ((key, encoded[key]) for key in _shard_order(rows, cols) if key in encoded)
+            yield (r, c), shard_bytes(order, (rows, cols)) if encoded else None
+
+
+def _write_map_step(fs, path: str, array: zarr.Array, step: int, values: np.ndarray) -> bool:
+    """Write time step ``step`` of a map-layout variable (``values`` is (1, y, x)) straight to its
+    shard objects, byte for byte what ``array[step:step + 1] = values`` writes (tests compare).
+    False, and nothing written, when the array is not laid out as map_encoding lays it out."""
+    meta = array.metadata.to_dict()
+    chunk, shard = array.chunks, array.shards
+    fill = array.fill_value
+    plain = (shard is not None and len(shard) == 3 and shard[0] == 1 and chunk[0] == 1
+             and shard[1] % chunk[1] == 0 and shard[2] % chunk[2] == 0
+             and json.loads(json.dumps(meta["codecs"])) == map_codecs(array.basename, chunk)
+             and (np.isnan(fill) if array.dtype == np.float32 else array.dtype == np.uint32))
+    if not plain or values.dtype != array.dtype or values.shape != (1, *array.shape[1:]):
+        return False
+    quantize = array.basename in FLOAT_VARS
+    for (r, c), data in _map_shards(values[0], chunk, shard, fill, quantize):
+        key = f"{path}/{array.path}/{array.metadata.encode_chunk_key((step, r, c))}"
+        if data is None:
+            if fs.exists(key):
+                fs.rm_file(key)
+        elif is_local(fs):  # whole or not at all, like zarr's LocalStore (the same temporary name)
+            os.makedirs(os.path.dirname(key), exist_ok=True)
+            temp = f"{key}.{uuid.uuid4().hex}.partial"
+            try:
+                with open(temp, "wb") as f:
+                    f.write(data)
+                os.replace(temp, key)
+            finally:
+                if os.path.exists(temp):
+                    os.unlink(temp)
+        else:
+            fs.pipe_file(key, data)
+        crash_point("grid.shard")
+    return True
+
+
 def read_spec(cube_url: str, storage_options: dict | None = None) -> GridSpec | None:
     """The spec stored in an existing cube's attributes, or None when there is no cube."""
     fs, path = filesystem(cube_url, storage_options)
@@ -212,9 +337,17 @@ def read_spec(cube_url: str, storage_options: dict | None = None) -> GridSpec | 
 
 
 def _mark_series_stale(cube_url: str, storage_options: dict | None) -> None:
-    """Flag the series copy as out of date *before* the root changes (safe if we die between)."""
+    """Flag the series copy as out of date *before* the root changes (safe if we die between).
+
+    The series group's own metadata says whether it is flagged already (write_series sets the
+    flag before it consolidates): then every later append skips a rewrite and a consolidation."""
     fs, path = filesystem(cube_url, storage_options)
-    if fs.exists(f"{path}/{SERIES_GROUP}/zarr.json"):
+    try:
+        with fs.open(f"{path}/{SERIES_GROUP}/zarr.json", "rb") as f:
+            flagged = json.load(f).get("attributes", {}).get(SERIES_COMPLETE) is False
+    except FileNotFoundError:
+        return
+    if not flagged:
         group = zarr.open_group(zarr_store(cube_url, storage_options), path=SERIES_GROUP, mode="r+",
                                 zarr_format=3, use_consolidated=False)
         group.attrs[SERIES_COMPLETE] = False
@@ -231,21 +364,21 @@ def write_epoch(
 ) -> int:
     """Add (or replace) one scan's time step; returns its storage index along time.
 
-    The first call creates the cube under a temporary name and renames it into place. Every
-    call writes through zarr only, without xarray or a dataset (importing xarray and the dask
-    it pulls in costs every migrate process and worker about 0.4 CPU-second): the new cube is
-    what xarray's ``to_zarr`` of :func:`epoch_dataset` with :func:`map_encoding` writes, byte
-    for byte. Later calls grow each array along time by one and give it the step's values, so
-    only the new epoch's shards and the small time/scan_id/points_outside objects are written.
-    A scan id already present (or a slot left empty by an interrupted append) is overwritten
-    in place.
+    The first call creates the cube under a temporary name and renames it into place. No call
+    goes through xarray or a dataset (importing xarray and the dask it pulls in costs every
+    migrate process and worker about 0.4 CPU-second): the new cube is what xarray's ``to_zarr``
+    of :func:`epoch_dataset` with :func:`map_encoding` writes, byte for byte. Later calls grow
+    each array along time by one (zarr writes the metadata and the small time/scan_id/
+    points_outside objects) and write only the new epoch's map shards (``_write_map_step``,
+    byte for byte what zarr would). A scan id already present (or a slot left empty by an
+    interrupted append) is overwritten in place.
     """
     existing = read_spec(cube_url, storage_options)
     if existing is None:
         values = _step_values(spec, time, scan_id, epoch)
         fs, path = filesystem(cube_url, storage_options)
         suffix = f".tmp-{uuid.uuid4().hex[:8]}"
-        _create(zarr_store(cube_url.rstrip("/") + suffix, storage_options), spec, values)
+        _create(zarr_store(cube_url.rstrip("/") + suffix, storage_options), fs, path.rstrip("/") + suffix, spec, values)
         fs.mv(path.rstrip("/") + suffix, path, recursive=True)
         return 0
     if existing != spec:
@@ -264,10 +397,12 @@ def write_epoch(
     slot = np.flatnonzero(ids == scan_id)
     if slot.size == 0:
         slot = np.flatnonzero(ids == "")  # left by an interrupted append, or a retired scan's
+    fs, path = filesystem(cube_url, storage_options)
     if slot.size:
         i = int(slot[0])
         for name, a in arrays.items():
-            a[i : i + 1] = values[name]
+            if name not in CUBE_VARS or not _write_map_step(fs, path, a, i, values[name]):
+                a[i : i + 1] = values[name]
         return i
     # the root's metadata loses its consolidated copy first and gets it back last: an append cut
     # short shows, and migrate's _repair_cube cuts the arrays back to the shortest. scan_id goes
@@ -275,8 +410,12 @@ def write_epoch(
     root.update_attributes({})
     i = int(ids.size)
     for name, a in arrays.items():
-        a.resize((i + 1, *a.shape[1:]))
-        a[i : i + 1] = values[name]
+        if name in CUBE_VARS:
+            a.resize((i + 1, *a.shape[1:]))
+            if not _write_map_step(fs, path, a, i, values[name]):
+                a[i : i + 1] = values[name]
+        else:
+            a.append(values[name])  # resize and write in one call: what a resize and an assignment write
     zarr.consolidate_metadata(store)
     return i
 
@@ -287,9 +426,10 @@ COORDINATES = "scan_id spatial_ref"
 NAN_FILL = "AAAAAAAA+H8="
 
 
-def _create(store, spec: GridSpec, values: dict[str, np.ndarray]) -> None:
+def _create(store, fs, path: str, spec: GridSpec, values: dict[str, np.ndarray]) -> None:
     """A new cube holding one time step, laid out as ``epoch_dataset(...).to_zarr(encoding=map_encoding(spec),
-    consolidated=True, write_empty_chunks=False)`` writes it (tests compare the two byte for byte)."""
+    consolidated=True, write_empty_chunks=False)`` writes it (tests compare the two byte for byte);
+    ``fs`` and ``path`` are the store's filesystem and folder, for the map variables' shards."""
     root = zarr.create_group(store, zarr_format=3, attributes=group_attrs(spec), overwrite=False)
     chunk, shard = map_shard(spec.ny, spec.nx)
     config = {"write_empty_chunks": False}
@@ -298,7 +438,8 @@ def _create(store, spec: GridSpec, values: dict[str, np.ndarray]) -> None:
         a = root.create_array(name, shape=data.shape, dtype=data.dtype if data.dtype != object else str,
                               chunks=chunks, fill_value=fill_value, dimension_names=dims,
                               attributes=attrs, config=config, **codecs)
-        a[...] = data
+        if name not in CUBE_VARS or not _write_map_step(fs, path, a, 0, data):
+            a[...] = data
 
     for name in CUBE_VARS:
         attrs = variable_attrs(spec, name) | {"coordinates": COORDINATES}

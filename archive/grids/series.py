@@ -19,7 +19,6 @@ little-endian, zstd); the tests read them back with zarr-python and compare with
 from __future__ import annotations
 
 import dask.array as da
-import google_crc32c
 import numcodecs
 import numpy as np
 import xarray as xr
@@ -28,10 +27,9 @@ from zarr.codecs import ZstdCodec
 from zarr.codecs.numcodecs import Quantize
 
 from archive.grids.cube import (CUBE_VARS, FLOAT_VARS, QUANTIZE_DIGITS, SERIES_COMPLETE, SERIES_GROUP,
-                                open_cube, series_shape, zarr_store)
+                                open_cube, series_shape, shard_bytes, zarr_store)
 from archive.storage import filesystem
 
-EMPTY = np.uint64(2**64 - 1)  # index entry of a chunk that is not stored (sharding spec)
 ZSTD_LEVEL = 3
 BLOCK = 256  # cells per side read from the map layout at a time: its inner chunk, so nothing is decoded twice
 
@@ -52,16 +50,8 @@ def encode_shard(block: np.ndarray, chunk: tuple[int, int], shard: int, fill, qu
     if empty.all():
         return None
     zstd = numcodecs.Zstd(level=ZSTD_LEVEL)
-    index = np.full((ny, nx, 2), EMPTY, dtype="<u8")
-    parts: list[bytes] = []
-    offset = 0
-    for j, i in zip(*np.nonzero(~empty)):
-        data = bytes(zstd.encode(tiles[j, i].tobytes()))
-        index[j, i] = (offset, len(data))
-        parts.append(data)
-        offset += len(data)
-    index_bytes = index.tobytes()
-    return b"".join(parts) + index_bytes + google_crc32c.value(index_bytes).to_bytes(4, "little")
+    return shard_bytes((((j, i), bytes(zstd.encode(tiles[j, i].tobytes()))) for j, i in zip(*np.nonzero(~empty))),
+                       (ny, nx))
 
 
 def _skeleton(ds: xr.Dataset, url: str, storage_options: dict | None) -> tuple[tuple, tuple]:
