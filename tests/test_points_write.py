@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 from archive.points.coords import decimal_from_units, units_of
 from archive.points.hilbert import SiteGrid
 from archive.points.sort import Part, _group_of_rows, _radix_order
-from archive.points.write import write_scan
+from archive.points.write import _Moments, write_scan
 
 DEC = pa.decimal128(18, 3)  # what a caller usually has, and what readers get back
 N = 61_000
@@ -147,6 +147,25 @@ def test_spill_files_are_removed_when_a_chunk_fails(tmp_path) -> None:
             row_group_size=GROUP, memory_budget=100_000, spill_dir=str(spill),
         )
     assert os.listdir(spill) == []
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.int16, np.float32, np.int64])
+def test_moments_of_batches_some_constant_equal_numpy(dtype) -> None:
+    """Batches that hold one value (most flag columns) and batches that do not, merged."""
+    rng = np.random.default_rng(3)
+    batches = [np.full(500, 7, dtype), rng.integers(0, 100, 300).astype(dtype), np.full(1, 0, dtype),
+               np.full(2_000, 7, dtype), rng.integers(-50 if dtype != np.uint8 else 0, 60, 77).astype(dtype)]
+    m = _Moments()
+    for b in batches:
+        m.add(b)
+    every = np.concatenate(batches).astype(np.float64)
+    # reference: numpy over the whole column at once
+    assert (m.n, m.min, m.max) == (every.size, every.min(), every.max())
+    assert m.mean == pytest.approx(every.mean(), rel=1e-12)
+    assert np.sqrt(m.m2 / m.n) == pytest.approx(every.std(), rel=1e-12)
+    one = _Moments()
+    one.add(np.full(10, 3, dtype))
+    assert (one.mean, one.m2, one.min, one.max) == (3.0, 0.0, 3.0, 3.0)
 
 
 def test_checksum_size_and_statistics(memory_file) -> None:
