@@ -338,7 +338,7 @@ def _emit_groups(
         starts = np.cumsum([0] + [len(p) for p in parts])
         full = len(order) // size * size
         for start in range(0, full, per):
-            yield codec.decode(_gather(parts, starts, order[start : min(full, start + per)], True).records.view(codec.dtype))
+            yield codec.decode(_gather(parts, starts, order[start : min(full, start + per)], records_only=True).records.view(codec.dtype))
         if full < len(order):
             carry = _gather(parts, starts, order[full:])
         parts = order = None  # type: ignore[assignment]  # free this bucket before the next is read
