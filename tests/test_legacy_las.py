@@ -17,6 +17,7 @@ import pytest
 import archive
 from archive.migrate import migrate
 from archive.query.export import extract
+from archive.query.points import join_scans
 from archive.points.coords import AxisEncoding
 
 CRS = "EPSG:32633"
@@ -151,6 +152,18 @@ def test_scans_of_different_point_formats_read_as_one_table(tmp_path):
     cut = extract(str(shelf), str(tmp_path / "all.parquet"), bbox_fraction=1.0)
     assert cut.points == got.num_rows
     assert pq.read_table(tmp_path / "all.parquet", columns=["overlap"])["overlap"].null_count == len(one.points)
+
+
+def test_join_of_required_and_optional_columns_of_one_name():
+    """A scan written with REQUIRED columns joins one written with OPTIONAL ones (earlier
+    versions) and one without the column."""
+    required = pa.schema([pa.field("x", pa.float64(), nullable=False), pa.field("overlap", pa.uint8(), nullable=False)])
+    new = pa.Table.from_arrays([pa.array([1.0, 2.0]), pa.array([1, 0], pa.uint8())], schema=required)
+    old = pa.table({"x": [3.0], "overlap": pa.array([1], pa.uint8())})
+    without = pa.table({"x": [4.0]})
+    joined = join_scans([new, old, without])
+    assert joined.column("x").to_pylist() == [1.0, 2.0, 3.0, 4.0]
+    assert joined.column("overlap").to_pylist() == [1, 0, 1, None]
 
 
 ODD = 1.0000000000000002e-09  # not a short decimal: a float axis
@@ -448,6 +461,7 @@ def test_unknown_station_names_the_stations_and_renamed_stations_are_noted(tmp_p
 
 def test_extract_to_las_gives_back_the_integers_of_an_odd_scale(tmp_path):
     from archive.query.export import extract
+from archive.query.points import join_scans
 
     src, shelf = tmp_path / "src", tmp_path / "shelf"
     las = _las(src / "st/scan_20160501_101500.las", scales=SCALES[0][0], offsets=SCALES[0][1], gps=1.146e9 - 1e9)
