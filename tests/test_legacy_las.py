@@ -460,9 +460,6 @@ def test_unknown_station_names_the_stations_and_renamed_stations_are_noted(tmp_p
 
 
 def test_extract_to_las_gives_back_the_integers_of_an_odd_scale(tmp_path):
-    from archive.query.export import extract
-from archive.query.points import join_scans
-
     src, shelf = tmp_path / "src", tmp_path / "shelf"
     las = _las(src / "st/scan_20160501_101500.las", scales=SCALES[0][0], offsets=SCALES[0][1], gps=1.146e9 - 1e9)
     migrate(str(src), str(shelf), previews=False)
