@@ -62,6 +62,7 @@ SERIES_COMPLETE = "scanshelf:series_complete"
 MAP_CHUNK = 256  # inner chunk edge of the map layout (cells)
 MAP_SHARD_BYTES = 16 << 20  # raw bytes of one map-layout shard at most (objects of ≤ ~16 MB)
 QUANTIZE_DIGITS = 3  # decimal places of a metre kept in elevation and elevation_std (≤ 0.5 mm error)
+ZSTD_LEVEL = 3  # of every cube object; the map shards written here and zarr's metadata must agree
 SERIES_OBJECTS = 1536  # series-layout shards per station cube at most (3 variables) ...
 SERIES_OBJECTS_PER_EPOCH = 8  # ... plus this many per epoch: long records afford smaller shard indexes
 TIME_CHUNK = 4096  # 1-D time/scan_id coordinates: one small object, rewritten on append
@@ -197,7 +198,7 @@ def series_shape(t: int, ny: int, nx: int) -> tuple[tuple[int, int, int], tuple[
 def map_encoding(spec: GridSpec) -> dict:
     """Map layout: shards of one epoch (see ``map_shard``), inner chunks (1, 256, 256)."""
     chunk, shard = map_shard(spec.ny, spec.nx)
-    enc = {v: {"chunks": chunk, "shards": shard, "compressors": [ZstdCodec(level=3)]} for v in CUBE_VARS}
+    enc = {v: {"chunks": chunk, "shards": shard, "compressors": [ZstdCodec(level=ZSTD_LEVEL)]} for v in CUBE_VARS}
     for v in FLOAT_VARS:
         enc[v]["filters"] = [Quantize(digits=QUANTIZE_DIGITS, dtype="<f4")]
     enc["point_count"]["fill_value"] = 0
@@ -210,7 +211,7 @@ def map_encoding(spec: GridSpec) -> dict:
 def map_codecs(name: str, chunk: tuple[int, int, int]) -> list[dict]:
     """The codecs of a map-layout variable as its Zarr v3 metadata states them (see map_encoding)."""
     inner = [{"name": "bytes", "configuration": {"endian": "little"}},
-             {"name": "zstd", "configuration": {"level": 3, "checksum": False}}]
+             {"name": "zstd", "configuration": {"level": ZSTD_LEVEL, "checksum": False}}]
     if name in FLOAT_VARS:
         inner.insert(0, {"name": "numcodecs.quantize", "configuration": {"digits": QUANTIZE_DIGITS, "dtype": "<f4"}})
     return [{"name": "sharding_indexed", "configuration": {
@@ -262,7 +263,7 @@ def _map_shards(values: np.ndarray, chunk: tuple[int, int, int], shard: tuple[in
     """
     (_, cy, cx), (_, sy, sx) = chunk, shard
     rows, cols = sy // cy, sx // cx
-    zstd = numcodecs.Zstd(level=3, checksum=False)
+    zstd = numcodecs.Zstd(level=ZSTD_LEVEL, checksum=False)
     quantizer = numcodecs.Quantize(digits=QUANTIZE_DIGITS, dtype="<f4") if quantize else None
     band = np.empty((cy, sx), values.dtype.newbyteorder("<"))
     ny, nx = values.shape
@@ -450,7 +451,7 @@ def _create(store, fs, path: str, spec: GridSpec, values: dict[str, np.ndarray])
         else:
             codecs = {"filters": None}
         array(name, values[name], chunk, ("time", "y", "x"), attrs, fill, shards=shard,
-              compressors=[ZstdCodec(level=3)], **codecs)
+              compressors=[ZstdCodec(level=ZSTD_LEVEL)], **codecs)
     array("points_outside", values["points_outside"], (TIME_CHUNK,), ("time",),
           variable_attrs(spec, "points_outside") | {"coordinates": COORDINATES}, 0)
     array("scan_id", values["scan_id"], (TIME_CHUNK,), ("time",), {"long_name": "scan id"}, "")

@@ -26,11 +26,10 @@ import zarr
 from zarr.codecs import ZstdCodec
 from zarr.codecs.numcodecs import Quantize
 
-from archive.grids.cube import (CUBE_VARS, FLOAT_VARS, QUANTIZE_DIGITS, SERIES_COMPLETE, SERIES_GROUP,
+from archive.grids.cube import (CUBE_VARS, FLOAT_VARS, QUANTIZE_DIGITS, SERIES_COMPLETE, SERIES_GROUP, ZSTD_LEVEL,
                                 open_cube, series_shape, shard_bytes, zarr_store)
 from archive.storage import filesystem
 
-ZSTD_LEVEL = 3
 BLOCK = 256  # cells per side read from the map layout at a time: its inner chunk, so nothing is decoded twice
 
 
