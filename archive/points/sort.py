@@ -198,15 +198,19 @@ def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
     kmin = min(int(p.keys.min()) for p in parts if len(p))
     kmax = max(int(p.keys.max()) for p in parts if len(p))
     shift = max(0, (kmax - kmin).bit_length() - BIN_BITS)
-    bins = [((p.keys - p.keys.dtype.type(kmin)) >> shift).astype(np.int32) for p in parts]
-    count = sum(np.bincount(b, minlength=((kmax - kmin) >> shift) + 1) for b in bins)
+    count = np.zeros(((kmax - kmin) >> shift) + 1, np.int64)
+    for bins in _bins_of_parts(parts, kmin, shift):
+        count += np.bincount(bins, minlength=len(count))
     before = np.cumsum(count) - count
     first, straddle = _groups_of_bins(before, count, size)
     dtype = np.uint16 if (before[-1] + count[-1]) // size < 2**16 - 2 else np.uint32
     mark = np.iinfo(dtype).max  # straddling bins: one gather gives groups and marks
     marked = np.where(straddle, mark, first).astype(dtype)
-    group = np.concatenate([marked[b] for b in bins])
-    del bins
+    group = np.empty(sum(len(p) for p in parts), dtype)
+    start = 0
+    for bins in _bins_of_parts(parts, kmin, shift):
+        np.take(marked, bins, out=group[start : start + len(bins)])
+        start += len(bins)
     hits, keys, start = [], [], 0
     for p in parts:
         h = np.flatnonzero(group[start : start + len(p)] == mark)
@@ -214,9 +218,24 @@ def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
         keys.append(p.keys[h])
         start += len(p)
     if sum(len(h) for h in hits):
-        rel = np.concatenate(keys).astype(np.int64) - kmin
+        rel = np.concatenate(keys)  # the keys' own unsigned type: half the bytes of int64
+        rel -= rel.dtype.type(kmin)
         group[np.concatenate(hits)] = _straddling_groups(rel, shift, before, straddle, size)
     return group
+
+
+def _bins_of_parts(parts: list[Part], kmin: int, shift: int) -> Iterator[np.ndarray]:
+    """Bin numbers ``(key - kmin) >> shift`` of each part's rows, as the platform integers that
+    bincount and take index with, in one scratch array that the next part overwrites: binning
+    20M rows then takes no fresh memory beyond one part (fresh pages cost the kernel more than
+    the arithmetic on them)."""
+    scratch = np.empty(max(len(p) for p in parts), np.intp)
+    for p in parts:
+        bins = scratch[: len(p)]
+        np.copyto(bins, p.keys, casting="unsafe")  # keys < 2^62 (SiteGrid order <= 31): no wrap-around
+        np.subtract(bins, kmin, out=bins)
+        np.right_shift(bins, shift, out=bins)
+        yield bins
 
 
 def _groups_of_bins(before: np.ndarray, count: np.ndarray, size: int) -> tuple[np.ndarray, np.ndarray]:
@@ -236,8 +255,14 @@ def _straddling_groups(rel: np.ndarray, shift: int, before: np.ndarray, straddle
     """
     bins = np.flatnonzero(straddle)
     fine = min(shift, max(0, BIN_BITS - len(bins).bit_length()))
-    ordinal = np.cumsum(straddle) - 1
-    sub = (ordinal[rel >> shift] << fine) | ((rel >> (shift - fine)) & ((1 << fine) - 1))
+    ordinal = np.cumsum(straddle, dtype=np.intp) - 1
+    part = rel >> shift
+    sub = ordinal[part]  # platform integers, as bincount and the gathers below index with
+    sub <<= fine
+    np.right_shift(rel, shift - fine, out=part)
+    part &= part.dtype.type((1 << fine) - 1)
+    np.bitwise_or(sub, part, out=sub, dtype=np.intp, casting="unsafe")  # part < 2^fine: fits any type
+    del part
     count = np.bincount(sub, minlength=len(bins) << fine).reshape(len(bins), -1)
     before = (np.cumsum(count, axis=1) - count + before[bins][:, None]).ravel()
     count = count.ravel()
