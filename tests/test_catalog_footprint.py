@@ -167,3 +167,20 @@ def test_outline_is_the_one_traced_from_scipy_rasters(mask: np.ndarray, monkeypa
     monkeypatch.setattr(footprint, "_close", lambda m: _scipy_close(m) | m)
     monkeypatch.setattr(footprint, "_fill_holes", ndimage.binary_fill_holes)
     assert ours == outline(mask, TF, WKT)
+
+
+@given(_masks())
+@settings(max_examples=200, deadline=None)
+@example(np.eye(5, dtype=bool))  # cells that touch only at corners
+@example(_island_in_lake(30))
+def test_cells_polygon_equals_rasterio_trace(mask: np.ndarray) -> None:
+    from rasterio import features
+
+    if not mask.any():
+        assert footprint.cells_polygon(mask, TF).is_empty
+        return
+    # reference: rasterio.features.shapes (GDAL's polygonize of the cell edges), united by shapely
+    traced = shapely.union_all([shape(g) for g, _ in features.shapes(mask.astype(np.uint8), mask=mask, transform=TF)])
+    ours = footprint.cells_polygon(mask, TF)
+    assert ours.equals(traced)  # the same point set (vertices may differ by collinear points)
+    assert ours.area == pytest.approx(np.count_nonzero(mask) * abs(TF.a * TF.e), rel=1e-12)

@@ -42,10 +42,11 @@ def test_zero_config_site_file_does_not_load_jsonschema():
     assert "jsonschema" not in loaded
 
 
-def test_footprint_outline_does_not_load_scipy():
-    """scipy.ndimage alone cost every migrate process about a third of a CPU-second.
+def test_footprint_outline_does_not_load_scipy_or_rasterio():
+    """scipy.ndimage alone cost every migrate process about a third of a CPU-second, rasterio
+    (GDAL's start-up, and boto3 where installed) a fifth.
 
-    rasterio 1.4, shapely 2 and pyproj 3.7, which the outline does need, load no scipy either.
+    shapely 2 and pyproj 3.7, which the outline does need, load neither.
     """
     code = """
 import numpy as np
@@ -58,8 +59,8 @@ geometry = outline(mask, (2.0, 0, 500000.0, 0, -2.0, 7650200.0), CRS.from_epsg(3
 assert geometry["type"] == "Polygon", geometry
 """
     loaded = _loaded_after(code)
-    assert {"archive", "rasterio", "shapely"} <= loaded  # the outline was traced
-    assert sorted(loaded & {"scipy"}) == []
+    assert {"archive", "shapely", "pyproj"} <= loaded  # the outline was traced
+    assert sorted(loaded & {"scipy", "rasterio", "boto3"}) == []
 
 
 def test_zero_config_migrate_of_las_scans_does_not_load_xarray_or_dask(tmp_path):
@@ -78,7 +79,7 @@ run = CliRunner().invoke(cli, ["migrate", {str(tmp_path / "source")!r}, {str(she
 assert run.exit_code == 0, run.output
 """)
     assert {"archive", "zarr", "matplotlib"} <= loaded  # the run did grid and draw
-    assert sorted(loaded & {"xarray", "dask"}) == []
+    assert sorted(loaded & {"xarray", "dask", "rasterio", "boto3"}) == []
     # the run made everything a zero-config run makes, so nothing was skipped on the way
     assert sorted(p.name for p in (shelf / "grids").iterdir()) == ["collection.json", "north.zarr", "south.zarr"]
     assert len(list((shelf / "previews").iterdir())) == 4

@@ -12,10 +12,10 @@ from collections.abc import Sequence
 
 import numpy as np
 import shapely
+import shapely.affinity
 from affine import Affine
 from pyproj import CRS, Transformer
-from rasterio import features
-from shapely.geometry import MultiPolygon, Polygon, mapping, shape
+from shapely.geometry import MultiPolygon, Polygon, mapping
 
 MAX_VERTICES = 300
 MAX_PARTS = 20
@@ -48,8 +48,7 @@ def _native_outline(mask: np.ndarray, tf: Affine) -> Polygon | MultiPolygon:
     cell = max(abs(tf.a), abs(tf.e))
     closed = _close(mask)
     filled = _fill_holes(closed)  # occluded shadows inside the fan do not help a search
-    parts = [shape(g) for g, _ in features.shapes(filled.astype(np.uint8), mask=filled, transform=tf)]
-    geom = _main_parts(_drop_holes(_polygonal(shapely.union_all(parts))))
+    geom = _main_parts(_drop_holes(_polygonal(cells_polygon(filled, tf))))
     tolerance = cell / 2
     for _ in range(30):
         simple = _polygonal(shapely.make_valid(geom.simplify(tolerance)))
@@ -57,6 +56,20 @@ def _native_outline(mask: np.ndarray, tf: Affine) -> Polygon | MultiPolygon:
             return simple
         tolerance *= 2
     return geom.convex_hull.simplify(cell)  # last resort; a hull is never too detailed to search
+
+
+def cells_polygon(mask: np.ndarray, tf: Affine) -> Polygon | MultiPolygon:
+    """The union of the set cells of ``mask`` as polygons whose edges are cell edges.
+
+    Each row's runs of set cells become boxes, united by GEOS: the same area that tracing the
+    raster's cell edges gives, without importing rasterio (and the GDAL start-up and boto3 it
+    brings: 0.2 CPU-s of every migrate process) for the one trace per scan.
+    """
+    edges = np.diff(np.pad(mask, ((0, 0), (1, 1))).view(np.int8), axis=1)  # +1 where a run starts, -1 after it ends
+    rows, starts = np.nonzero(edges == 1)
+    _, ends = np.nonzero(edges == -1)  # row-major, as the starts: the i-th end closes the i-th run
+    cells = shapely.union_all(shapely.box(starts, rows, ends, rows + 1))
+    return shapely.affinity.affine_transform(cells, [tf.a, tf.b, tf.d, tf.e, tf.c, tf.f])  # (col, row) -> native
 
 
 def _close(mask: np.ndarray) -> np.ndarray:
