@@ -3,6 +3,7 @@ bounds, time range and checksum an independent reader gives, whatever the chunki
 
 from __future__ import annotations
 
+import errno
 import hashlib
 from pathlib import Path
 
@@ -137,10 +138,11 @@ def test_conversion_chunks_stay_valid_after_a_measure(tmp_path) -> None:
         np.testing.assert_array_equal(np.concatenate([c[name] for c in held]), np.asarray(reference.points.array[name]))
 
 
-@pytest.mark.parametrize("where", ["local", "memory"])
-def test_conversion_chunks_of_a_truncated_file_equal_laspy(tmp_path, where) -> None:
-    """Local files are mapped, other file systems read; both give the whole records, and chunks
-    that start anywhere in a page (the point data offset is not page-aligned)."""
+@pytest.mark.parametrize("where", ["local", "memory", "unmappable"])
+def test_conversion_chunks_of_a_truncated_file_equal_laspy(tmp_path, monkeypatch, where) -> None:
+    """Local files are mapped, other file systems read, and so are local files that a file system
+    refuses to map after the first chunk; all give the whole records, and chunks that start
+    anywhere in a page (the point data offset is not page-aligned)."""
     whole = tmp_path / "whole.las"
     _write(whole, N, evlr=False)
     original = laspy.read(str(whole))
@@ -148,12 +150,22 @@ def test_conversion_chunks_of_a_truncated_file_equal_laspy(tmp_path, where) -> N
     offset, size = original.header.offset_to_point_data, original.header.point_format.size
     assert offset % 4096 and (offset + 70_001 * size) % 4096  # chunks begin inside pages
     cut = data[: offset + KEPT * size + size // 2]
-    if where == "local":
-        fs, path = fsspec.filesystem("file"), str(tmp_path / "north_20260901_060000.las")
-        Path(path).write_bytes(cut)
-    else:
+    if where == "memory":
         fs, path = fsspec.filesystem("memory"), f"/scanshelf-test-{tmp_path.name}/north_20260901_060000.las"
         fs.pipe(path, cut)
+    else:
+        fs, path = fsspec.filesystem("file"), str(tmp_path / "north_20260901_060000.las")
+        Path(path).write_bytes(cut)
+    if where == "unmappable":  # the first chunk maps; then the mount says it cannot (ENODEV)
+        calls = iter([las_module._mapped_records])
+
+        def once(*args):
+            step = next(calls, None)
+            if step is None:
+                raise OSError(errno.ENODEV, "No such device")
+            return step(*args)
+
+        monkeypatch.setattr(las_module, "_mapped_records", once)
     try:
         reader = open_points(fs, path, "north/north_20260901_060000.las", len(cut), cut[:4096], SiteFile())
         held = list(reader.rows(chunk_size=70_001, salvage=True).chunks)
@@ -161,7 +173,8 @@ def test_conversion_chunks_of_a_truncated_file_equal_laspy(tmp_path, where) -> N
         if where == "memory":
             fs.rm(path)
     assert [len(c) for c in held] == [70_001, 70_001, KEPT - 140_002]
-    assert all(c.flags.writeable == (where == "memory") for c in held)  # mapped pages are read-only
+    # mapped pages are read-only
+    assert [c.flags.writeable for c in held] == {"local": [False] * 3, "memory": [True] * 3, "unmappable": [False, True, True]}[where]
     # reference: laspy 2.x's integer records of the whole file, the first KEPT of them
     expected = original.points.array[:KEPT]
     for name in expected.dtype.names:

@@ -8,7 +8,7 @@ import os
 import stat
 import struct
 from contextlib import ExitStack
-from typing import Iterator
+from typing import Callable, Iterator
 
 import numpy as np
 import pyarrow as pa
@@ -162,15 +162,10 @@ class LasReader:
             raise DamagedSource(f"{self.relpath}: {'; '.join(header.problems)}; use --salvage to keep the readable points")
         self.tally.problems.extend(p for p in header.problems if p not in self.tally.problems)
         want = self._stored if header.format == "las" else header.declared_count
-        dtype = self.codec.dtype
         with ExitStack() as stack:
             fh = stack.enter_context(self._opener())
-            fd = _local_file(fh) if header.format == "las" and into is None else None
-            if fd is not None:
-                read = lambda n: _mapped_records(fd, self._offset + done * dtype.itemsize, n, dtype)  # noqa: E731
-            elif header.format == "las":
-                fh.seek(self._offset)
-                read = lambda n: _read_records(fh, n, dtype, into)  # noqa: E731
+            if header.format == "las":
+                read = _uncompressed_reader(fh, self._offset, self.codec.dtype, into)
             else:
                 reader = stack.enter_context(_laspy().open(fh))
                 read = lambda n: reader.read_points(n).array  # noqa: E731
@@ -194,6 +189,30 @@ class LasReader:
                 done += len(records)
                 self.tally.points += len(records)
                 yield records
+
+
+def _uncompressed_reader(fh, offset: int, dtype: np.dtype, into: np.ndarray | None) -> Callable[[int], np.ndarray]:
+    """``read(n)``: the next records of the points at byte ``offset`` of ``fh``, mapped where it is
+    a local file and ``into`` is not given, else read; a file system that cannot map a file (some
+    FUSE and network mounts) is read from where mapping failed."""
+    fd = _local_file(fh) if into is None else None
+    position = offset
+    fh.seek(offset)
+
+    def read(n: int) -> np.ndarray:
+        nonlocal fd, position
+        if fd is not None:
+            try:
+                records = _mapped_records(fd, position, n, dtype)
+            except OSError:
+                fd = None
+                fh.seek(position)
+            else:
+                position += records.nbytes
+                return records
+        return _read_records(fh, n, dtype, into)
+
+    return read
 
 
 def _local_file(fh) -> int | None:
