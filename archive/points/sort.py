@@ -256,13 +256,13 @@ def _straddling_groups(rel: np.ndarray, shift: int, before: np.ndarray, straddle
     bins = np.flatnonzero(straddle)
     fine = min(shift, max(0, BIN_BITS - len(bins).bit_length()))
     ordinal = np.cumsum(straddle, dtype=np.intp) - 1
-    part = rel >> shift
-    sub = ordinal[part]  # platform integers, as bincount and the gathers below index with
+    bits = rel >> shift  # the bin; then, in the same memory, the sub-bin within it
+    sub = ordinal[bits]  # platform integers, as bincount and the gathers below index with
     sub <<= fine
-    np.right_shift(rel, shift - fine, out=part)
-    part &= part.dtype.type((1 << fine) - 1)
-    np.bitwise_or(sub, part, out=sub, dtype=np.intp, casting="unsafe")  # part < 2^fine: fits any type
-    del part
+    np.right_shift(rel, shift - fine, out=bits)
+    bits &= bits.dtype.type((1 << fine) - 1)
+    np.bitwise_or(sub, bits, out=sub, dtype=np.intp, casting="unsafe")  # bits < 2^fine: fits any type
+    del bits
     count = np.bincount(sub, minlength=len(bins) << fine).reshape(len(bins), -1)
     before = (np.cumsum(count, axis=1) - count + before[bins][:, None]).ravel()
     count = count.ravel()
