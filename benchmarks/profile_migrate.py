@@ -6,8 +6,11 @@
 Generates ``--scans`` demo scans of ``--points`` points each (uncompressed LAS 1.4, as
 benchmarks/migrate.py does), migrates them in this process under cProfile and prints the top
 entries by cumulative and by own CPU time (the profiler's clock is the process's CPU time, so
-waiting and the neighbours' load on a shared machine do not show). The stats file (``--out``) opens in snakeviz or
-``python -m pstats``. For native frames (numpy, Arrow, zstd) use py-spy on the same script:
+waiting and the neighbours' load on a shared machine do not show). Before those it splits the
+CPU a fresh ``python`` process would spend: interpreter start, imports, the exit, the library calls
+named in LIBRARY, the numpy kernels our code calls, and our own Python frames; the two ceilings it
+prints are the rates if our frames (then also their numpy kernels) cost nothing. The stats file
+(``--out``) opens in snakeviz or ``python -m pstats``. For native frames (numpy, Arrow, zstd) use py-spy on the same script:
 
     py-spy record --native -o migrate.svg -- python benchmarks/profile_migrate.py --points 20000000
 """
@@ -17,9 +20,12 @@ from __future__ import annotations
 import argparse
 import cProfile
 import io
+import json
+import os
 import pstats
 import resource
 import shutil
+import subprocess
 import sys
 import tempfile
 import time
@@ -60,6 +66,7 @@ def main() -> None:
     from archive.migrate import migrate
 
     imports = _import_cost(work, migrate, args.previews)  # measured apart: the profiler inflates imports 2x
+    process = _process_cost(work, args.previews)
 
     # CPU clock of the whole process: on a shared machine wall time mostly measures the neighbours
     profile = cProfile.Profile(time.process_time)
@@ -72,7 +79,7 @@ def main() -> None:
     cpu = (cpu1.ru_utime - cpu0.ru_utime) + (cpu1.ru_stime - cpu0.ru_stime)
     print(f"{result.points:,} points in {wall:.1f} s wall, {cpu:.1f} s CPU (all threads): "
           f"{result.points / cpu:,.0f} points per CPU-second")
-    _print_split(pstats.Stats(profile), result.points, cpu, imports)
+    _print_split(pstats.Stats(profile), result.points, cpu, imports, process)
     for key in dict.fromkeys([args.sort, "cumulative"]):
         out = io.StringIO()
         pstats.Stats(profile, stream=out).strip_dirs().sort_stats(key).print_stats(args.top)
@@ -92,6 +99,20 @@ LIBRARY = (
     ("other threads (zarr's event loop) while waited for", "~", "<method 'acquire' of '_thread.lock' objects>", "own"),
 )
 
+# A fresh `python` that imports archive.migrate, migrates 2,000 points and exits; prints the
+# process's CPU when the script starts, after the import and after the call.
+PROCESS = """
+import json, resource, sys
+def cpu():
+    r = resource.getrusage(resource.RUSAGE_SELF)
+    return r.ru_utime + r.ru_stime
+started = cpu()
+from archive.migrate import migrate
+imported = cpu()
+migrate(sys.argv[1], sys.argv[2], previews=sys.argv[3] == "1")
+print(json.dumps([started, imported, cpu()]))
+"""
+
 
 def _import_cost(work: Path, migrate, previews: bool) -> float:
     """CPU of the imports that migrate() makes on its first call: a 2,000-point migrate run twice,
@@ -109,24 +130,49 @@ def _import_cost(work: Path, migrate, previews: bool) -> float:
     return max(0.0, spent[0] - spent[1])
 
 
-def _print_split(stats: pstats.Stats, points: int, cpu: float, imports: float) -> None:
+def _process_cost(work: Path, previews: bool) -> dict[str, float]:
+    """CPU that a fresh process spends outside the migrate() call: interpreter start, importing
+    archive.migrate, and the exit (the interpreter's final collection and teardown of every module
+    the call loaded), from a child process's own clock and its total (RUSAGE_CHILDREN)."""
+    shelf = work / "warm-up-shelf"
+    shutil.rmtree(shelf, ignore_errors=True)
+    root = str(Path(__file__).resolve().parents[1])
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [root, os.environ.get("PYTHONPATH")])))
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    out = subprocess.run([sys.executable, "-c", PROCESS, str(work / "warm-up-source"), str(shelf), "1" if previews else "0"],
+                         capture_output=True, text=True, env=env, check=True)
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    shutil.rmtree(shelf, ignore_errors=True)
+    started, imported, called = json.loads(out.stdout.strip().splitlines()[-1])
+    total = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+    return {"interpreter start": started, "import archive.migrate": imported - started, "exit and teardown": total - called}
+
+
+def _print_split(stats: pstats.Stats, points: int, cpu: float, imports: float, process: dict[str, float]) -> None:
     """Library calls against everything else (our own code and the numpy it runs), and the rate
-    the run would reach if everything else cost nothing."""
-    total = sum(tt for _, _, tt, _, _ in stats.stats.values()) + imports  # type: ignore[attr-defined]
-    print(f"\nwhere {total:.2f} CPU-s went (the profiled run, {cpu:.2f} s, and the first call's imports):")
-    print(f"  {'imports on the first call (measured without the profiler)':52s} {imports:6.2f} s  {100 * imports / total:5.1f} %")
-    library = imports
+    the run would reach if everything else cost nothing; the fresh process's own costs beside."""
+    outside = sum(process.values())
+    total = sum(tt for _, _, tt, _, _ in stats.stats.values()) + imports + outside  # type: ignore[attr-defined]
+    print(f"\nwhere {total:.2f} CPU-s of a fresh process would go (the profiled run, {cpu:.2f} s, the first "
+          "call's imports, and the process around the call):")
+    for label, spent in process.items():
+        print(f"  {label + ' (a fresh process)':58s} {spent:6.2f} s  {100 * spent / total:5.1f} %")
+    print(f"  {'imports on the first call (without the profiler)':58s} {imports:6.2f} s  {100 * imports / total:5.1f} %")
+    library = imports + outside
     for label, where, name, kind in LIBRARY:
         spent = 0.0
         for (filename, _, function), (_, _, tt, ct, _) in stats.stats.items():  # type: ignore[attr-defined]
             if function == name and where in filename:
                 spent = max(spent, ct) if kind == "cum" else spent + tt  # cum: the outermost call holds the rest
         library += spent
-        print(f"  {label:52s} {spent:6.2f} s  {100 * spent / total:5.1f} %")
-    rest = total - library
-    print(f"  {'everything else (our code, numpy, zarr, Pillow)':52s} {rest:6.2f} s  {100 * rest / total:5.1f} %")
-    print(f"  library calls and imports alone: {points / library:,.0f} points per CPU-second at most, "
-          f"if everything else cost nothing (the run: {points / total:,.0f})\n")
+        print(f"  {label:58s} {spent:6.2f} s  {100 * spent / total:5.1f} %")
+    kernels = sum(tt for (filename, _, function), (_, _, tt, _, _) in stats.stats.items()  # type: ignore[attr-defined]
+                  if filename == "~" and "numpy" in function)
+    print(f"  {'numpy kernels that our code calls (take, astype, ...)':58s} {kernels:6.2f} s  {100 * kernels / total:5.1f} %")
+    rest = total - library - kernels
+    print(f"  {'our Python frames (with the numpy operators inline)':58s} {rest:6.2f} s  {100 * rest / total:5.1f} %")
+    print(f"  at most, if our Python frames cost nothing: {points / (library + kernels):,.0f} points per CPU-second; "
+          f"if the numpy kernels did too: {points / library:,.0f} (this run: {points / total:,.0f})\n")
 
 
 if __name__ == "__main__":
