@@ -12,6 +12,7 @@ from pathlib import Path
 import psutil
 import pyarrow.parquet as pq
 
+from archive.cluster import DaskExecutor
 from archive.ledger import Ledger
 from archive.migrate import migrate
 from tests import factory
@@ -45,6 +46,23 @@ def test_two_workers_give_the_serial_shelf(small_source, small_shelf, tmp_path):
     for p in (serial / "points").rglob("*.parquet"):
         other = tmp_path / "shelf" / p.relative_to(serial)
         assert pq.read_table(other).equals(pq.read_table(p))
+
+
+def test_workers_keep_the_adaptive_allocator(monkeypatch):
+    """distributed's own default config (distributed.yaml, nanny.pre-spawn-environ) starts every
+    worker with MALLOC_TRIM_THRESHOLD_=65536, which turns off glibc's adaptive mmap threshold
+    (mallopt(3): setting the variable fixes the threshold); our local workers must start without it."""
+    import dask
+    import distributed  # noqa: F401 - loads its default config
+
+    monkeypatch.delenv("MALLOC_TRIM_THRESHOLD_", raising=False)
+    assert dask.config.get("distributed.nanny.pre-spawn-environ")["MALLOC_TRIM_THRESHOLD_"] == 65536
+    executor = DaskExecutor(workers=1)
+    try:
+        seen = dict(executor.run(os.getenv, ["MALLOC_TRIM_THRESHOLD_", "OMP_NUM_THREADS"]))
+    finally:
+        executor.close()
+    assert seen == {"MALLOC_TRIM_THRESHOLD_": None, "OMP_NUM_THREADS": "1"}  # the nanny's other settings stay
 
 
 KILLABLE = """
