@@ -20,12 +20,9 @@ from __future__ import annotations
 import argparse
 import cProfile
 import io
-import json
-import os
 import pstats
 import resource
 import shutil
-import subprocess
 import sys
 import tempfile
 import time
@@ -102,15 +99,15 @@ LIBRARY = (
 # A fresh `python` that imports archive.migrate, migrates 2,000 points and exits; prints the
 # process's CPU when the script starts, after the import and after the call.
 PROCESS = """
-import json, resource, sys
+import json, resource
 def cpu():
     r = resource.getrusage(resource.RUSAGE_SELF)
     return r.ru_utime + r.ru_stime
 started = cpu()
 from archive.migrate import migrate
 imported = cpu()
-migrate(sys.argv[1], sys.argv[2], previews=sys.argv[3] == "1")
-print(json.dumps([started, imported, cpu()]))
+migrate({source!r}, {shelf!r}, previews={previews!r})
+print(json.dumps({{"started": started, "imported": imported, "called": cpu()}}))
 """
 
 
@@ -133,19 +130,15 @@ def _import_cost(work: Path, migrate, previews: bool) -> float:
 def _process_cost(work: Path, previews: bool) -> dict[str, float]:
     """CPU that a fresh process spends outside the migrate() call: interpreter start, importing
     archive.migrate, and the exit (the interpreter's final collection and teardown of every module
-    the call loaded), from a child process's own clock and its total (RUSAGE_CHILDREN)."""
+    the call loaded): the child's own clock against its total. Migrates `_import_cost`'s source."""
+    from benchmarks.migrate import _child
+
     shelf = work / "warm-up-shelf"
     shutil.rmtree(shelf, ignore_errors=True)
-    root = str(Path(__file__).resolve().parents[1])
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [root, os.environ.get("PYTHONPATH")])))
-    before = resource.getrusage(resource.RUSAGE_CHILDREN)
-    out = subprocess.run([sys.executable, "-c", PROCESS, str(work / "warm-up-source"), str(shelf), "1" if previews else "0"],
-                         capture_output=True, text=True, env=env, check=True)
-    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    run = _child(PROCESS.format(source=str(work / "warm-up-source"), shelf=str(shelf), previews=previews))
     shutil.rmtree(shelf, ignore_errors=True)
-    started, imported, called = json.loads(out.stdout.strip().splitlines()[-1])
-    total = (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
-    return {"interpreter start": started, "import archive.migrate": imported - started, "exit and teardown": total - called}
+    return {"interpreter start": run["started"], "import archive.migrate": run["imported"] - run["started"],
+            "exit and teardown": run["cpu_s"] - run["called"]}
 
 
 def _print_split(stats: pstats.Stats, points: int, cpu: float, imports: float, process: dict[str, float]) -> None:
