@@ -80,7 +80,7 @@ def hilbert_index(ix: np.ndarray, iy: np.ndarray, order: int) -> np.ndarray:
     ix, iy = np.asarray(ix), np.asarray(iy)
     if ix.shape != iy.shape:
         raise ValueError(f"ix and iy differ in shape: {ix.shape} vs {iy.shape}")
-    return _blockwise(ix.ravel(), iy.ravel(), order, lambda a, axis: a).reshape(ix.shape)
+    return _blockwise(ix.reshape(-1), iy.reshape(-1), order, lambda a, axis: a).reshape(ix.shape)
 
 
 def _blockwise(x: np.ndarray, y: np.ndarray, order: int, to_cell) -> np.ndarray:
@@ -160,7 +160,7 @@ class SiteGrid:
         scale = self.cells / self.size
         origin = (self.x0, self.y0)
         return _blockwise(
-            np.asarray(x).ravel(), np.asarray(y).ravel(), self.order,
+            np.asarray(x).reshape(-1), np.asarray(y).reshape(-1), self.order,
             lambda v, axis: _cell(v, origin[axis], scale, self.cells),
         )
 
@@ -178,7 +178,7 @@ class SiteGrid:
         scale = self.cells / (self.size * unit)
         origin = (self.x0 * unit, self.y0 * unit)
         return _blockwise(
-            np.asarray(ux).ravel(), np.asarray(uy).ravel(), self.order,
+            np.asarray(ux).reshape(-1), np.asarray(uy).reshape(-1), self.order,
             lambda v, axis: _cell(_units(v, steps[axis], shifts[axis]), origin[axis], scale, self.cells),
         )
 

@@ -15,7 +15,7 @@ import pyarrow as pa
 
 from archive.points.coords import AxisEncoding, LossyEncoding
 from archive.points.rows import Rows, held_records, keys_of_axes, numeric_array
-from archive.sources.base import DamagedSource, ReadTally, SourceError, SourceHeader
+from archive.sources.base import DamagedSource, ReadTally, SourceError, SourceHeader, value_range
 
 LAS_SIGNATURE = b"LASF"
 RAW_HEADER = 375  # the LAS 1.4 public header block; older versions use its first 227 bytes
@@ -138,9 +138,9 @@ class LasReader:
         timed = "gps_time" in self.codec.dtype.names
         for raw in self._records(chunk_size, salvage=True, into=buffer):
             for i, name in enumerate(("X", "Y", "Z")):
-                values = raw[name]
-                lows[i] = min(lows[i], int(values.min()))
-                highs[i] = max(highs[i], int(values.max()))
+                lo, hi = value_range(raw[name])
+                lows[i] = min(lows[i], int(lo))
+                highs[i] = max(highs[i], int(hi))
             if timed:
                 self.tally.note_times(raw["gps_time"])
         if self.tally.points == 0:
