@@ -321,10 +321,14 @@ class LasCodec:
             if self.axes[axis].raw:  # integers not recoverable from float64: keep them
                 columns[f"{axis}_raw"] = numeric_array(records[raw].astype(np.int32))
         view = None
+        packed: dict[str, np.ndarray] = {}  # bit-field bytes, copied out of the records once
         for how, name, details in self._plan:
             if how == "bits":
                 composed, mask, shift = details
-                values = (records[composed] & mask) >> shift
+                if composed not in packed:
+                    packed[composed] = np.ascontiguousarray(records[composed])
+                values = np.bitwise_and(packed[composed], mask)
+                np.right_shift(values, shift, out=values)
             elif how == "field":
                 values = np.ascontiguousarray(records[name])
             else:
