@@ -180,3 +180,26 @@ def test_conversion_chunks_of_a_truncated_file_equal_laspy(tmp_path, monkeypatch
     for name in expected.dtype.names:
         np.testing.assert_array_equal(np.concatenate([c[name] for c in held]), expected[name])
     assert reader.tally.problems == [f"header declares {N} points but the file holds {KEPT} (truncated, or a header count too large)"]
+
+
+@pytest.mark.parametrize("n", [5, 4096, 65_536, 200_003])
+def test_value_range_of_a_strided_field_equals_numpy(n) -> None:
+    from archive.sources.base import RANGE_BLOCK, value_range
+
+    records = np.zeros(n, dtype=[("X", "<i4"), ("flags", "u1"), ("gps_time", "<f8")])
+    rng = np.random.default_rng(5)
+    records["X"] = rng.integers(-1000, 1000, n)
+    records["gps_time"] = rng.random(n)
+    # extremes at the ends of the blocks the copies are made in, and NaN times to be skipped
+    for at, low, high in ((0, -2**31, 2**31 - 1), (RANGE_BLOCK - 1, -5000, 5000), (RANGE_BLOCK, -7000, 7000), (n - 1, -9000, 9000)):
+        if at < n:
+            records["X"][at] = low if at % 2 else high
+            records["gps_time"][at] = np.nan if at == 0 else (-1.0 if at % 2 else 2.0)
+    x, times = records["X"], records["gps_time"]
+    assert not x.flags.c_contiguous
+    # reference: numpy's own reductions over a contiguous copy
+    plain = np.array(x)
+    assert tuple(int(v) for v in value_range(x)) == (int(plain.min()), int(plain.max()))
+    copied = np.array(times)
+    lo, hi = value_range(times, skip_nan=True)
+    assert (float(lo), float(hi)) == (float(np.nanmin(copied)), float(np.nanmax(copied)))
