@@ -18,10 +18,14 @@ CPU is user + system time of the process and its threads, from getrusage(RUSAGE_
       CPU-second and peak RSS (target ≤ 1.5 GiB).
 
     python benchmarks/migrate.py [--points 20000000] [--small-points 1500000] [--spill-points 0]
-                                 [--workdir DIR] [--keep]
+                                 [--repeat 3] [--workdir DIR] [--keep]
 
 The default work folder is a fresh one under the system temp folder (tempfile). On a shared
-machine the wall times are noisy; the CPU figures much less so.
+machine the wall times are noisy, and so is CPU time: the same fresh-process migrate has cost
+from 6.0 to 8.2 CPU-s on our 2-core test machine within minutes. So (a) runs ``--repeat`` times,
+each migrate followed by the plain write (both see the same phase of the machine), and prints
+every run, the median (the figure the target is judged on) and the best (timeit's convention:
+what the machine does when nothing interferes).
 """
 
 from __future__ import annotations
@@ -186,6 +190,7 @@ def main() -> None:
     parser.add_argument("--points", type=int, default=20_000_000, help="points of the big scan (a)")
     parser.add_argument("--small-points", type=int, default=1_500_000, help="points of each of the 5 scans (b)")
     parser.add_argument("--spill-points", type=int, default=0, help="points of the spill-path scan (e); 0 skips it")
+    parser.add_argument("--repeat", type=int, default=3, help="runs of (a), each migrate followed by the plain write")
     parser.add_argument("--workdir", default=None, help="default: a fresh folder under the system temp folder")
     parser.add_argument("--keep", action="store_true", help="keep the generated files")
     args = parser.parse_args()
@@ -203,11 +208,16 @@ def main() -> None:
     print(f"generated {n:,} + 5 × {n5 // 5:,} scan-ordered points as LAS 1.4 fmt 6 in "
           f"{time.perf_counter() - t0:.0f} s ({las.stat().st_size / n:.1f} bytes/point uncompressed)")
 
-    # (a) one big scan through the library
-    mig = _child(TIMERS + MIGRATE.format(source=str(work / "big"), shelf=str(work / "big-shelf")))
-    assert mig["points"] == n and not mig["failed"], mig
+    # (a) one big scan through the library, and the plain write of it, run after run
+    runs = []
+    for _ in range(max(1, args.repeat)):
+        shutil.rmtree(work / "big-shelf", ignore_errors=True)
+        mig = _child(TIMERS + MIGRATE.format(source=str(work / "big"), shelf=str(work / "big-shelf")))
+        assert mig["points"] == n and not mig["failed"], mig
+        runs.append((mig, _child(PLAIN.format(pairs=[(str(las), str(work / "plain.parquet"))], dictionary=False))))
+    runs.sort(key=lambda run: run[0]["cpu_s"])
+    mig, plain = runs[len(runs) // 2]  # the median migrate, and the plain write that followed it
     shelf_bytes = sum(p.stat().st_size for p in (work / "big-shelf" / "points").rglob("*.parquet"))
-    plain = _child(PLAIN.format(pairs=[(str(las), str(work / "plain.parquet"))], dictionary=False))
     _child(LAZ.format(src=str(las), dst=str(work / "same.laz")))
     laz_bytes = (work / "same.laz").stat().st_size
     plain_bytes = (work / "plain.parquet").stat().st_size
@@ -221,8 +231,12 @@ def main() -> None:
     pictures = sum(spent.get(k, [0.0])[0] for k in ("previews", "report maps", "report charts"))
 
     print("\nmachine: " + f"{os.cpu_count()} cores, load average {os.getloadavg()[0]:.1f} at the end (shared?)")
-    print("\n(a) one scan, library migrate() with defaults (previews, catalog, index.html)")
+    print(f"\n(a) one scan, library migrate() with defaults (previews, catalog, index.html); {len(runs)} runs")
     _row("points", f"{n:,}")
+    _row("migrate CPU (s), runs fastest first", " / ".join(f"{m['cpu_s']:.2f}" for m, _ in runs), "(plain: "
+         + " / ".join(f"{p['cpu_s']:.2f}" for _, p in runs) + ")")
+    _row("best run: migrate points per CPU-second", f"{n / runs[0][0]['cpu_s']:,.0f}")
+    print("median run:")
     _row("migrate wall / CPU (s)", f"{mig['wall_s']:.1f} / {mig['cpu_s']:.1f}")
     _row("migrate points per CPU-second", f"{n / mig['cpu_s']:,.0f}", "target ≥ 3,000,000")
     _row("migrate points per wall second", f"{n / mig['wall_s']:,.0f}")
