@@ -45,11 +45,12 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 
 
-def _child(code: str) -> dict:
-    """Run ``code`` in a fresh interpreter; it prints one JSON line. Adds wall, CPU and peak RSS."""
+def _child(code: str, root: Path = ROOT) -> dict:
+    """Run ``code`` in a fresh interpreter with the ``archive`` package of ``root``; it prints one
+    JSON line. Adds wall, CPU and peak RSS."""
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
     t0 = time.perf_counter()
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")])))
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [str(root), os.environ.get("PYTHONPATH")])))
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
     if out.returncode:
         raise SystemExit(f"benchmark step failed:\n{out.stderr[-3000:]}")
