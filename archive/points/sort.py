@@ -300,12 +300,16 @@ def _gather(parts: list[Part], starts: np.ndarray, idx: np.ndarray, records_only
 def _pieces(parts: list[Part], starts: np.ndarray, idx: np.ndarray) -> list[tuple[Part, slice | np.ndarray, np.ndarray]]:
     """(part, where its rows go in the output, their positions in the part) for the rows `idx`.
 
-    A row group in arrival order is a run of ascending positions, so its rows of one part are one
-    slice of the output, found by a binary search of the part starts in the run (not of every row
-    in the starts); positions that descend more often (key order) are split by masks.
+    A row group in arrival order from a memory bucket is a run of ascending positions, so its rows
+    of one part are one slice of the output, found by a binary search of the part starts in the
+    run (not of every row in the starts). Otherwise (a spill bucket and its carry, key order) rows
+    are assigned to parts one by one: consecutive rows of one part still make one slice, and
+    positions that switch parts more often are split by masks.
     """
     if not len(idx):
         return []
+    if len(parts) == 1:
+        return [(parts[0], slice(0, len(idx)), idx)]
     descents = np.flatnonzero(idx[1:] < idx[:-1]) + 1
     if len(descents) < 4 * len(parts) + 16:
         pieces = []
@@ -315,6 +319,10 @@ def _pieces(parts: list[Part], starts: np.ndarray, idx: np.ndarray) -> list[tupl
             pieces += [(p, slice(lo, hi), idx[lo:hi] - s) for p, s, lo, hi in zip(parts, starts, cuts[:-1], cuts[1:]) if hi > lo]
         return pieces
     which = np.searchsorted(starts[1:-1], idx, side="right")  # part of each row
+    cuts = np.flatnonzero(which[1:] != which[:-1]) + 1
+    if len(cuts) < 4 * len(parts) + 16:
+        runs = zip([0, *cuts.tolist()], [*cuts.tolist(), len(idx)])
+        return [(parts[which[a]], slice(a, b), idx[a:b] - starts[which[a]]) for a, b in runs]
     return [(p, sel, idx[sel] - s) for k, (p, s) in enumerate(zip(parts, starts))
             if (sel := np.flatnonzero(which == k)).size]
 
