@@ -112,8 +112,11 @@ class AxisEncoding:
     def units(self, raw: np.ndarray) -> np.ndarray:
         """LAS integers X of a decimal axis → the stored int64 counts of 10^-k."""
         units = raw.astype(np.int64)
-        units *= self._step
-        units += self._shift
+        step, shift = self._step, self._shift
+        if step != 1:  # 1 for the usual case, scale and 10^-k equal
+            units *= step
+        if shift:
+            units += shift
         return units
 
     def to_las(self, values: np.ndarray) -> np.ndarray:
