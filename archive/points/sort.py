@@ -207,20 +207,23 @@ def _group_of_rows(parts: list[Part], size: int) -> np.ndarray:
     mark = np.iinfo(dtype).max  # straddling bins: one gather gives groups and marks
     marked = np.where(straddle, mark, first).astype(dtype)
     group = np.empty(sum(len(p) for p in parts), dtype)
-    start = 0
-    for bins in _bins_of_parts(parts, kmin, shift):
-        np.take(marked, bins, out=group[start : start + len(bins)])
-        start += len(bins)
-    hits, keys, start = [], [], 0
-    for p in parts:
-        h = np.flatnonzero(group[start : start + len(p)] == mark)
-        hits.append(h + start)
-        keys.append(p.keys[h])
-        start += len(p)
-    if sum(len(h) for h in hits):
-        rel = np.concatenate(keys)  # the keys' own unsigned type: half the bytes of int64
+    starts = np.cumsum([0] + [len(p) for p in parts])
+    views = [group[a:b] for a, b in zip(starts[:-1], starts[1:])]  # each part's rows
+    for view, bins in zip(views, _bins_of_parts(parts, kmin, shift)):
+        np.take(marked, bins, out=view)
+    # the straddling rows' keys, in position order, in one array of the keys' own unsigned type
+    # (half the bytes of int64); their positions stay per part (fresh memory costs: see DEVELOPERS.md)
+    hits = [np.flatnonzero(v == mark) for v in views]
+    ends = np.cumsum([0] + [len(h) for h in hits])
+    if ends[-1]:
+        rel = np.empty(ends[-1], np.result_type(*(p.keys.dtype for p in parts)))
+        for p, h, a, b in zip(parts, hits, ends, ends[1:]):
+            np.take(p.keys, h, out=rel[a:b])
         rel -= rel.dtype.type(kmin)
-        group[np.concatenate(hits)] = _straddling_groups(rel, shift, before, straddle, size)
+        found = _straddling_groups(rel, shift, before, straddle, size, dtype)
+        del rel
+        for v, h, a, b in zip(views, hits, ends, ends[1:]):
+            v[h] = found[a:b]
     return group
 
 
@@ -244,9 +247,10 @@ def _groups_of_bins(before: np.ndarray, count: np.ndarray, size: int) -> tuple[n
     return first, (count > 0) & (first != (before + count - 1) // size)
 
 
-def _straddling_groups(rel: np.ndarray, shift: int, before: np.ndarray, straddle: np.ndarray, size: int) -> np.ndarray:
-    """Groups of the rows (keys minus kmin `rel`, in position order) of bins `rel >> shift` that
-    straddle a group boundary.
+def _straddling_groups(rel: np.ndarray, shift: int, before: np.ndarray, straddle: np.ndarray, size: int,
+                       dtype: np.dtype) -> np.ndarray:
+    """Groups (as ``dtype``) of the rows (keys minus kmin `rel`, in position order) of bins
+    `rel >> shift` that straddle a group boundary.
 
     Each straddling bin is cut into 2^fine sub-bins counted on one histogram of those bins alone,
     so sub-bins are single keys where that histogram stays small (a dense spot, such as the ground
@@ -267,7 +271,7 @@ def _straddling_groups(rel: np.ndarray, shift: int, before: np.ndarray, straddle
     before = (np.cumsum(count, axis=1) - count + before[bins][:, None]).ravel()
     count = count.ravel()
     first, again = _groups_of_bins(before, count, size)
-    group = first[sub]
+    group = first.astype(dtype)[sub]
     hits = np.flatnonzero(again[sub])
     if hits.size:
         order = hits[_stable_order(rel[hits])]  # hits ascend, so ties keep position order
