@@ -190,11 +190,12 @@ def test_value_range_of_a_strided_field_equals_numpy(n) -> None:
     rng = np.random.default_rng(5)
     records["X"] = rng.integers(-1000, 1000, n)
     records["gps_time"] = rng.random(n)
-    # extremes at the ends of the blocks the copies are made in, and NaN times to be skipped
-    for at, low, high in ((0, -2**31, 2**31 - 1), (RANGE_BLOCK - 1, -5000, 5000), (RANGE_BLOCK, -7000, 7000), (n - 1, -9000, 9000)):
-        if at < n:
-            records["X"][at] = low if at % 2 else high
-            records["gps_time"][at] = np.nan if at == 0 else (-1.0 if at % 2 else 2.0)
+    # extremes at the first value, at the last value of the first block the copies are made in,
+    # and at the last value (in the last, partial block); NaN times are to be skipped
+    records["X"][0], records["gps_time"][0] = 2**31 - 1, np.nan
+    if n > RANGE_BLOCK:
+        records["X"][RANGE_BLOCK - 1], records["gps_time"][RANGE_BLOCK - 1] = -5000, -1.0
+    records["X"][n - 1], records["gps_time"][n - 1] = -(2**31), 3.0
     x, times = records["X"], records["gps_time"]
     assert not x.flags.c_contiguous
     # reference: numpy's own reductions over a contiguous copy
@@ -203,3 +204,5 @@ def test_value_range_of_a_strided_field_equals_numpy(n) -> None:
     copied = np.array(times)
     lo, hi = value_range(times, skip_nan=True)
     assert (float(lo), float(hi)) == (float(np.nanmin(copied)), float(np.nanmax(copied)))
+    if n > RANGE_BLOCK:
+        assert float(lo) == -1.0  # the first block's last value
