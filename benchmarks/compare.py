@@ -55,6 +55,7 @@ def main() -> None:
     work = Path(args.workdir) if args.workdir else Path(tempfile.mkdtemp(prefix="scanshelf-compare-"))
     before = work / "before"
     shutil.rmtree(before, ignore_errors=True)
+    subprocess.run(["git", "-C", str(ROOT), "worktree", "prune"], check=True)  # forget one an interrupted run left
     subprocess.run(["git", "-C", str(ROOT), "worktree", "add", "--detach", "--quiet", str(before), args.ref], check=True)
     try:
         source = work / "source"
