@@ -2,8 +2,8 @@
 
     python benchmarks/compare.py REF [--points 20000000] [--pairs 6] [--workdir DIR]
 
-On our 2-core test machine the same migrate costs anywhere from 6.0 to 8.2 CPU-s depending on
-the minute, so two benchmark runs taken minutes apart cannot show a 5 % change. This checks out
+On our 2-core test machine the same migrate cost from 6.0 to 9.0 CPU-s in one afternoon, and up
+to 25 % more within minutes, so two benchmark runs taken minutes apart cannot show a 5 % change. This checks out
 REF (any git revision: a commit, a branch, HEAD~3) in a temporary worktree, generates one demo
 scan (as benchmarks/migrate.py does) and migrates it with REF's code and with the working tree's,
 one right after the other, ``--pairs`` times, so both versions of a pair meet the same phase of

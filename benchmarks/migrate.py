@@ -21,11 +21,12 @@ CPU is user + system time of the process and its threads, from getrusage(RUSAGE_
                                  [--repeat 3] [--workdir DIR] [--keep]
 
 The default work folder is a fresh one under the system temp folder (tempfile). On a shared
-machine the wall times are noisy, and so is CPU time: the same fresh-process migrate has cost
-from 6.0 to 8.2 CPU-s on our 2-core test machine within minutes. So (a) runs ``--repeat`` times,
-each migrate followed by the plain write (both see the same phase of the machine), and prints
-every run, the median (the figure the target is judged on) and the best (timeit's convention:
-what the machine does when nothing interferes); (b) likewise, judged on the median ratio.
+machine the wall times are noisy, and so is CPU time: the same fresh-process migrate cost from
+6.0 to 9.0 CPU-s in one afternoon on our 2-core test machine, and up to 25 % more within
+minutes. So (a) runs ``--repeat`` times, each migrate followed by the plain write (both see the
+same phase of the machine), and prints every run, the median (the figure the target is judged
+on) and the best (timeit's convention: what the machine does when nothing interferes); (b)
+likewise, judged on the median ratio.
 """
 
 from __future__ import annotations
