@@ -184,9 +184,12 @@ def test_conversion_chunks_of_a_truncated_file_equal_laspy(tmp_path, monkeypatch
 
 @pytest.mark.parametrize("n", [5, 4096, 65_536, 200_003])
 def test_value_range_of_a_strided_field_equals_numpy(n) -> None:
-    from archive.sources.base import RANGE_BLOCK, value_range
+    from archive.sources.base import IN_CACHE, RANGE_BLOCK, value_range
 
-    records = np.zeros(n, dtype=[("X", "<i4"), ("flags", "u1"), ("gps_time", "<f8")])
+    # 37-byte records, as wide as LAS 1.4 point format 7 with an extra byte: the largest n spans
+    # more than IN_CACHE, so its range is taken block by block
+    records = np.zeros(n, dtype=[("X", "<i4"), ("flags", "u1"), ("gps_time", "<f8"), ("rest", "V24")])
+    assert (200_003 * records.itemsize > IN_CACHE) and (65_536 * records.itemsize <= IN_CACHE)
     rng = np.random.default_rng(5)
     records["X"] = rng.integers(-1000, 1000, n)
     records["gps_time"] = rng.random(n)
