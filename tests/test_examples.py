@@ -94,3 +94,18 @@ def test_the_script_exit_codes_and_flushed_output(tmp_path) -> None:
     assert missing.returncode == 2 and "no catalog.json" in missing.stderr
     unknown = _run(["scanshelf", "no-such-command"], cwd=tmp_path)
     assert unknown.returncode == 2 and "No such command" in unknown.stderr
+
+
+@pytest.mark.parametrize("given, expected", [(None, "1"), ("2", "2")])
+def test_the_script_gives_numpy_one_blas_thread_unless_told_otherwise(tmp_path, given, expected) -> None:
+    """No command does linear algebra, and OpenBLAS's idle threads spin ~0.1 CPU-s at numpy's
+    import: the script sets OPENBLAS_NUM_THREADS=1 before numpy loads, unless the user set it."""
+    code = ("import atexit, os, sys; sys.argv = ['scanshelf', '--version']; "
+            "atexit.register(lambda: print('blas', os.environ.get('OPENBLAS_NUM_THREADS'), 'numpy' in sys.modules)); "
+            "from archive.cli import main; main()")
+    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+    if given is not None:
+        env["OPENBLAS_NUM_THREADS"] = given
+    done = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, env=env, capture_output=True, text=True, timeout=60)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.splitlines()[-1] == f"blas {expected} False"
